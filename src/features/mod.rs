@@ -1,0 +1,653 @@
+//! Text to sparse rows: tokenizer, n-grams and signed feature hashing.
+//!
+//! The scheme (version [`HASH_SCHEME`]) is part of every manifest and model, so a
+//! model trained on one machine scores the same text the same way anywhere:
+//!
+//! * **Tokens.** Text is split at every character that is not alphanumeric
+//!   (Unicode `Alphabetic` or `Numeric`); tokens are lowercased (ASCII by table,
+//!   other characters by Unicode's lowercase mapping). Invalid UTF-8 sequences act
+//!   as separators and are counted.
+//! * **Field seed.** Each text field has a seed `xxh3_64(field name, seed: hash_seed)`,
+//!   so the same word in a subject line and in a body lands in different buckets.
+//! * **Unigram** `t`: `h = xxh3_64(utf8(t), seed: field_seed)`.
+//! * **Word n-gram** of `n ≥ 2` consecutive tokens with unigram hashes
+//!   `h1..hn`: `h = xxh3_64(le_bytes(h1) ‖ … ‖ le_bytes(hn), seed: field_seed ^ n·φ)`
+//!   with `φ = 0x9E37_79B9_7F4A_7C15`.
+//! * **Character n-gram** of length `n` inside a token padded as `"<token>"`:
+//!   `h = xxh3_64(utf8(gram), seed: field_seed ^ CHAR_SALT ^ n·φ)`, for every `n`
+//!   in `min..=max` (grams longer than the padded token are skipped).
+//! * **Numeric field** `name`: `h = xxh3_64(name, seed: hash_seed ^ NUMERIC_SALT)`.
+//! * **Bucket and sign** (Weinberger et al. 2009, signed hashing): bucket =
+//!   `h & (2^K − 1)`, sign = `−1` if bit 63 of `h` is set, else `+1`.
+//! * **Values.** Signed counts are summed per bucket; by default each text entry
+//!   becomes `sign(c)·ln(1 + |c|)` and the text part of the row is scaled to unit
+//!   L2 norm. Numeric features are then added with their value times their sign,
+//!   neither damped nor normalised. Entries that cancel to zero are dropped.
+
+use serde::{Deserialize, Serialize};
+use xxhash_rust::xxh3::xxh3_64_with_seed;
+
+use crate::error::{Error, Result};
+
+/// Identifier of the tokenizing and hashing scheme described in this module.
+pub const HASH_SCHEME: &str = "tamis-xxh3-signed-1";
+/// Odd constant used to separate n-gram orders (2^64 / golden ratio).
+const PHI: u64 = 0x9E37_79B9_7F4A_7C15;
+/// Salt for character n-grams.
+const CHAR_SALT: u64 = 0x6368_6172_6772_616D; // "chargram"
+/// Salt for numeric features.
+const NUMERIC_SALT: u64 = 0x6E75_6D65_7269_6321; // "numeric!"
+/// Longest token kept whole; longer runs are cut (bounded work per token).
+pub const MAX_TOKEN_BYTES: usize = 256;
+/// Accepted range of `log2_buckets`.
+pub const LOG2_BUCKETS_RANGE: std::ops::RangeInclusive<u32> = 10..=28;
+/// Accepted range of word n-gram orders.
+pub const NGRAMS_RANGE: std::ops::RangeInclusive<u32> = 1..=5;
+
+/// Character n-gram lengths (inclusive).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+pub struct CharNgrams {
+    /// Shortest gram, in characters.
+    pub min: u32,
+    /// Longest gram, in characters.
+    pub max: u32,
+}
+
+impl std::str::FromStr for CharNgrams {
+    type Err = String;
+    fn from_str(s: &str) -> std::result::Result<Self, String> {
+        let (a, b) = s
+            .split_once("..")
+            .ok_or_else(|| format!("expected MIN..MAX such as 3..5, got {s:?}"))?;
+        let min: u32 = a.trim().parse().map_err(|_| format!("bad MIN in {s:?}"))?;
+        let max: u32 = b.trim().parse().map_err(|_| format!("bad MAX in {s:?}"))?;
+        if min == 0 || min > max || max > 16 {
+            return Err(format!("need 1 <= MIN <= MAX <= 16, got {s:?}"));
+        }
+        Ok(CharNgrams { min, max })
+    }
+}
+
+impl std::fmt::Display for CharNgrams {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        write!(f, "{}..{}", self.min, self.max)
+    }
+}
+
+/// Everything that decides how text becomes a sparse row. Stored in manifests and
+/// models; two datasets or a dataset and a model are compatible only if these are
+/// equal.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct FeatureConfig {
+    /// Scheme identifier, [`HASH_SCHEME`].
+    pub scheme: String,
+    /// Seed of all feature hashes.
+    pub hash_seed: u64,
+    /// Number of buckets is `2^log2_buckets`.
+    pub log2_buckets: u32,
+    /// Word n-grams up to this order (1 = unigrams only).
+    pub ngrams: u32,
+    /// Character n-grams inside words, if enabled.
+    pub char_ngrams: Option<CharNgrams>,
+    /// Keep raw summed counts (no log damping, no L2 normalisation).
+    pub raw_counts: bool,
+    /// Text field names, in the order the input module delivers them.
+    pub text_fields: Vec<String>,
+    /// Numeric field names.
+    pub numeric_fields: Vec<String>,
+}
+
+impl FeatureConfig {
+    /// Check ranges.
+    pub fn validate(&self) -> Result<()> {
+        if self.scheme != HASH_SCHEME {
+            return Err(Error::Invalid(format!(
+                "hashing scheme {:?} is not supported by this build (it knows {HASH_SCHEME:?})",
+                self.scheme
+            )));
+        }
+        if !LOG2_BUCKETS_RANGE.contains(&self.log2_buckets) {
+            return Err(Error::Invalid(format!(
+                "--log2-buckets must be in {}..={}, got {}",
+                LOG2_BUCKETS_RANGE.start(),
+                LOG2_BUCKETS_RANGE.end(),
+                self.log2_buckets
+            )));
+        }
+        if !NGRAMS_RANGE.contains(&self.ngrams) {
+            return Err(Error::Invalid(format!(
+                "--ngrams must be in {}..={}, got {}",
+                NGRAMS_RANGE.start(),
+                NGRAMS_RANGE.end(),
+                self.ngrams
+            )));
+        }
+        if self.text_fields.is_empty() {
+            return Err(Error::Invalid("at least one text field is needed".into()));
+        }
+        let mut names: Vec<&String> = self
+            .text_fields
+            .iter()
+            .chain(&self.numeric_fields)
+            .collect();
+        names.sort();
+        if let Some(w) = names.windows(2).find(|w| w[0] == w[1]) {
+            return Err(Error::Invalid(format!("field {:?} is named twice", w[0])));
+        }
+        Ok(())
+    }
+
+    /// Number of buckets.
+    pub fn buckets(&self) -> u64 {
+        1u64 << self.log2_buckets
+    }
+}
+
+/// Bucket and sign of a 64-bit feature hash.
+#[inline]
+pub fn bucket_sign(h: u64, mask: u64) -> (u32, f32) {
+    let sign = if h >> 63 == 1 { -1.0 } else { 1.0 };
+    ((h & mask) as u32, sign)
+}
+
+/// Seed of a text field.
+pub fn field_seed(hash_seed: u64, name: &str) -> u64 {
+    xxh3_64_with_seed(name.as_bytes(), hash_seed)
+}
+
+/// Hash of a numeric feature.
+pub fn numeric_hash(hash_seed: u64, name: &str) -> u64 {
+    xxh3_64_with_seed(name.as_bytes(), hash_seed ^ NUMERIC_SALT)
+}
+
+/// Hash of a word n-gram from its tokens' unigram hashes (`n = hashes.len() ≥ 2`).
+#[inline]
+pub fn ngram_hash(field_seed: u64, hashes: &[u64]) -> u64 {
+    let mut buf = [0u8; 8 * 5];
+    for (i, h) in hashes.iter().enumerate() {
+        buf[8 * i..8 * i + 8].copy_from_slice(&h.to_le_bytes());
+    }
+    xxh3_64_with_seed(
+        &buf[..8 * hashes.len()],
+        field_seed ^ (hashes.len() as u64).wrapping_mul(PHI),
+    )
+}
+
+/// Hash of a character n-gram of `n` characters.
+#[inline]
+pub fn char_ngram_hash(field_seed: u64, gram: &[u8], n: usize) -> u64 {
+    xxh3_64_with_seed(gram, field_seed ^ CHAR_SALT ^ (n as u64).wrapping_mul(PHI))
+}
+
+/// ASCII classes: 0 separator, 1 keep, 2 uppercase (add 32).
+static ASCII: [u8; 128] = {
+    let mut t = [0u8; 128];
+    let mut i = 0;
+    while i < 128 {
+        let c = i as u8;
+        t[i] = if c.is_ascii_lowercase() || c.is_ascii_digit() {
+            1
+        } else if c.is_ascii_uppercase() {
+            2
+        } else {
+            0
+        };
+        i += 1;
+    }
+    t
+};
+
+/// Decode one UTF-8 character at the start of `b` (non-empty, first byte ≥ 0x80).
+/// Returns the character, or `None` for an invalid sequence, and the bytes used.
+#[inline]
+fn decode(b: &[u8]) -> (Option<char>, usize) {
+    let lead = b[0];
+    let (width, init) = match lead {
+        0xC2..=0xDF => (2, (lead & 0x1F) as u32),
+        0xE0..=0xEF => (3, (lead & 0x0F) as u32),
+        0xF0..=0xF4 => (4, (lead & 0x07) as u32),
+        _ => return (None, 1),
+    };
+    if b.len() < width {
+        return (None, 1);
+    }
+    let mut cp = init;
+    for &c in &b[1..width] {
+        if c & 0xC0 != 0x80 {
+            return (None, 1);
+        }
+        cp = (cp << 6) | (c & 0x3F) as u32;
+    }
+    // Reject overlong forms and surrogates; char::from_u32 rejects the latter.
+    let min = [0, 0, 0x80, 0x800, 0x10000][width];
+    if cp < min {
+        return (None, 1);
+    }
+    match char::from_u32(cp) {
+        Some(c) => (Some(c), width),
+        None => (None, 1),
+    }
+}
+
+/// Split `text` into lowercased tokens, calling `emit` with each token's UTF-8
+/// bytes. Returns the number of invalid UTF-8 sequences met (decoded lossily as
+/// separators). No allocation: `buf` is reused.
+pub fn tokenize(text: &[u8], buf: &mut Vec<u8>, mut emit: impl FnMut(&[u8])) -> u32 {
+    let mut invalid = 0;
+    buf.clear();
+    let mut i = 0;
+    let n = text.len();
+    while i < n {
+        let c = text[i];
+        if c < 0x80 {
+            match ASCII[c as usize] {
+                1 => buf.push(c),
+                2 => buf.push(c + 32),
+                _ => {
+                    if !buf.is_empty() {
+                        emit(buf);
+                        buf.clear();
+                    }
+                }
+            }
+            i += 1;
+        } else {
+            let (ch, w) = decode(&text[i..]);
+            i += w;
+            match ch {
+                Some(ch) if ch.is_alphanumeric() => {
+                    let mut tmp = [0u8; 4];
+                    for lc in ch.to_lowercase() {
+                        buf.extend_from_slice(lc.encode_utf8(&mut tmp).as_bytes());
+                    }
+                }
+                other => {
+                    if other.is_none() {
+                        invalid += 1;
+                    }
+                    if !buf.is_empty() {
+                        emit(buf);
+                        buf.clear();
+                    }
+                }
+            }
+        }
+        if buf.len() >= MAX_TOKEN_BYTES {
+            // Cut pathological runs (base64 blobs, long hex) at a char boundary.
+            let mut cut = buf.len();
+            while cut > 0 && (buf[cut - 1] & 0xC0) == 0x80 {
+                cut -= 1;
+            }
+            if cut > 0 && buf[cut - 1] >= 0xC0 {
+                cut -= 1;
+            }
+            if cut == 0 {
+                cut = buf.len();
+            }
+            emit(&buf[..cut]);
+            buf.drain(..cut);
+        }
+    }
+    if !buf.is_empty() {
+        emit(buf);
+        buf.clear();
+    }
+    invalid
+}
+
+/// What one call to [`Featurizer::add_text`] saw.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
+pub struct TextStats {
+    /// Tokens found.
+    pub tokens: u32,
+    /// Invalid UTF-8 sequences met.
+    pub invalid_utf8: u32,
+}
+
+/// Turns the fields of one row into a sorted sparse vector. Holds reusable
+/// buffers: create one per thread and reuse it for every row.
+pub struct Featurizer {
+    cfg: FeatureConfig,
+    mask: u64,
+    field_seeds: Vec<u64>,
+    numeric_hashes: Vec<u64>,
+    token: Vec<u8>,
+    padded: Vec<u8>,
+    bounds: Vec<usize>,
+    recent: [u64; 5],
+    text: Vec<(u32, f32)>,
+    numeric: Vec<(u32, f32)>,
+}
+
+impl Featurizer {
+    /// Build a featurizer for `cfg` (validated).
+    pub fn new(cfg: &FeatureConfig) -> Result<Self> {
+        cfg.validate()?;
+        Ok(Featurizer {
+            mask: cfg.buckets() - 1,
+            field_seeds: cfg
+                .text_fields
+                .iter()
+                .map(|f| field_seed(cfg.hash_seed, f))
+                .collect(),
+            numeric_hashes: cfg
+                .numeric_fields
+                .iter()
+                .map(|f| numeric_hash(cfg.hash_seed, f))
+                .collect(),
+            cfg: cfg.clone(),
+            token: Vec::with_capacity(MAX_TOKEN_BYTES + 8),
+            padded: Vec::with_capacity(MAX_TOKEN_BYTES + 8),
+            bounds: Vec::with_capacity(MAX_TOKEN_BYTES + 8),
+            recent: [0; 5],
+            text: Vec::with_capacity(256),
+            numeric: Vec::with_capacity(8),
+        })
+    }
+
+    /// The configuration.
+    pub fn config(&self) -> &FeatureConfig {
+        &self.cfg
+    }
+
+    /// Start a new row.
+    pub fn begin_row(&mut self) {
+        self.text.clear();
+        self.numeric.clear();
+    }
+
+    /// Add the text of field number `field` (index into `text_fields`).
+    pub fn add_text(&mut self, field: usize, text: &[u8]) -> TextStats {
+        let seed = self.field_seeds[field];
+        let mask = self.mask;
+        let n = self.cfg.ngrams as usize;
+        let chars = self.cfg.char_ngrams;
+        let mut count = 0usize;
+        let Featurizer {
+            token,
+            padded,
+            bounds,
+            recent,
+            text: out,
+            ..
+        } = self;
+        let invalid = tokenize(text, token, |tok| {
+            let h = xxh3_64_with_seed(tok, seed);
+            out.push(bucket_sign(h, mask));
+            // Ring of the last n unigram hashes, newest at index count % n.
+            if n > 1 {
+                recent[count % n] = h;
+                let have = (count + 1).min(n);
+                let mut seq = [0u64; 5];
+                for order in 2..=have {
+                    for (j, slot) in seq[..order].iter_mut().enumerate() {
+                        // Oldest first: positions count-order+1 ..= count.
+                        *slot = recent[(count + 1 + j + n - order) % n];
+                    }
+                    out.push(bucket_sign(ngram_hash(seed, &seq[..order]), mask));
+                }
+            }
+            if let Some(cn) = chars {
+                char_grams(tok, cn, seed, mask, padded, bounds, out);
+            }
+            count += 1;
+        });
+        TextStats {
+            tokens: count as u32,
+            invalid_utf8: invalid,
+        }
+    }
+
+    /// Add the value of numeric field number `field`.
+    pub fn add_numeric(&mut self, field: usize, value: f64) {
+        let (b, s) = bucket_sign(self.numeric_hashes[field], self.mask);
+        self.numeric.push((b, s * value as f32));
+    }
+
+    /// Whether the row so far has any feature.
+    pub fn is_empty(&self) -> bool {
+        self.text.is_empty() && self.numeric.iter().all(|&(_, v)| v == 0.0)
+    }
+
+    /// Finish the row: merge, damp and normalise, then append the sorted indices
+    /// and values to `indices` and `values`. Returns the number of entries added.
+    pub fn finish_row(&mut self, indices: &mut Vec<u32>, values: &mut Vec<f32>) -> usize {
+        let start = indices.len();
+        merge(&mut self.text);
+        if !self.cfg.raw_counts {
+            let mut norm = 0.0f64;
+            for e in self.text.iter_mut() {
+                let v = e.1.abs().ln_1p().copysign(e.1);
+                e.1 = v;
+                norm += (v as f64) * (v as f64);
+            }
+            if norm > 0.0 {
+                let inv = (1.0 / norm.sqrt()) as f32;
+                for e in self.text.iter_mut() {
+                    e.1 *= inv;
+                }
+            }
+        }
+        if self.numeric.is_empty() {
+            for &(b, v) in &self.text {
+                indices.push(b);
+                values.push(v);
+            }
+        } else {
+            self.text.extend_from_slice(&self.numeric);
+            merge(&mut self.text);
+            for &(b, v) in &self.text {
+                indices.push(b);
+                values.push(v);
+            }
+        }
+        indices.len() - start
+    }
+}
+
+/// Sort by bucket, sum duplicates, drop zeros.
+fn merge(v: &mut Vec<(u32, f32)>) {
+    if v.len() < 2 {
+        v.retain(|e| e.1 != 0.0);
+        return;
+    }
+    v.sort_unstable_by_key(|e| e.0);
+    let mut w = 0;
+    for r in 0..v.len() {
+        if w > 0 && v[w - 1].0 == v[r].0 {
+            v[w - 1].1 += v[r].1;
+        } else {
+            v[w] = v[r];
+            w += 1;
+        }
+    }
+    v.truncate(w);
+    v.retain(|e| e.1 != 0.0);
+}
+
+/// Character n-grams of `"<tok>"`.
+fn char_grams(
+    tok: &[u8],
+    cn: CharNgrams,
+    seed: u64,
+    mask: u64,
+    padded: &mut Vec<u8>,
+    bounds: &mut Vec<usize>,
+    out: &mut Vec<(u32, f32)>,
+) {
+    padded.clear();
+    padded.push(b'<');
+    padded.extend_from_slice(tok);
+    padded.push(b'>');
+    bounds.clear();
+    for (i, &b) in padded.iter().enumerate() {
+        if b & 0xC0 != 0x80 {
+            bounds.push(i);
+        }
+    }
+    bounds.push(padded.len());
+    let chars = bounds.len() - 1;
+    for n in cn.min as usize..=cn.max as usize {
+        if n > chars {
+            break;
+        }
+        for s in 0..=chars - n {
+            let gram = &padded[bounds[s]..bounds[s + n]];
+            out.push(bucket_sign(char_ngram_hash(seed, gram, n), mask));
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn cfg() -> FeatureConfig {
+        FeatureConfig {
+            scheme: HASH_SCHEME.into(),
+            hash_seed: 7,
+            log2_buckets: 18,
+            ngrams: 2,
+            char_ngrams: None,
+            raw_counts: false,
+            text_fields: vec!["text".into()],
+            numeric_fields: vec![],
+        }
+    }
+
+    fn toks(s: &[u8]) -> (Vec<String>, u32) {
+        let mut out = Vec::new();
+        let mut buf = Vec::new();
+        let bad = tokenize(s, &mut buf, |t| {
+            out.push(String::from_utf8(t.to_vec()).unwrap())
+        });
+        (out, bad)
+    }
+
+    #[test]
+    fn tokenizer_splits_and_lowercases() {
+        assert_eq!(
+            toks(b"Hello, WORLD! it's 2x-fast").0,
+            ["hello", "world", "it", "s", "2x", "fast"]
+        );
+        assert_eq!(
+            toks("Ünïcode ÉTÉ straße ΣΊΣΥΦΟΣ".as_bytes()).0,
+            ["ünïcode", "été", "straße", "σίσυφοσ"]
+        );
+        assert_eq!(toks("日本語 テキスト".as_bytes()).0, ["日本語", "テキスト"]);
+        assert_eq!(toks(b"   ...   ").0, Vec::<String>::new());
+        // U+0130 (dotted capital I) lowercases to two characters.
+        assert_eq!(toks("İ".as_bytes()).0, ["i\u{307}"]);
+    }
+
+    #[test]
+    fn invalid_utf8_separates_and_counts() {
+        let (t, bad) = toks(b"ab\xffcd\xe2\x82 ef\xc0\xafgh");
+        assert_eq!(t, ["ab", "cd", "ef", "gh"]);
+        // One per byte that cannot start or continue a valid sequence.
+        assert_eq!(bad, 5);
+        // Surrogate code points encoded in UTF-8 are invalid too.
+        assert_eq!(toks(b"x\xed\xa0\x80y").1, 3);
+    }
+
+    #[test]
+    fn long_runs_are_cut() {
+        let long = "a".repeat(1000);
+        let (t, _) = toks(long.as_bytes());
+        assert!(t.iter().all(|x| x.len() <= MAX_TOKEN_BYTES));
+        assert_eq!(t.concat(), long);
+        let long = "é".repeat(300);
+        let (t, _) = toks(long.as_bytes());
+        assert_eq!(t.concat(), long);
+    }
+
+    fn row(f: &mut Featurizer, text: &str) -> (Vec<u32>, Vec<f32>) {
+        let (mut i, mut v) = (Vec::new(), Vec::new());
+        f.begin_row();
+        f.add_text(0, text.as_bytes());
+        f.finish_row(&mut i, &mut v);
+        (i, v)
+    }
+
+    #[test]
+    fn rows_are_sorted_unit_norm_and_count_ngrams() {
+        let mut f = Featurizer::new(&cfg()).unwrap();
+        let (i, v) = row(&mut f, "free money free money now");
+        assert!(i.windows(2).all(|w| w[0] < w[1]));
+        let norm: f32 = v.iter().map(|x| x * x).sum();
+        assert!((norm - 1.0).abs() < 1e-5);
+        // Distinct: free, money, now, "free money", "money free", "money now" = 6
+        // (barring a collision in 2^18 buckets, which does not happen for this seed).
+        assert_eq!(i.len(), 6);
+        let mut raw = cfg();
+        raw.raw_counts = true;
+        raw.ngrams = 1;
+        let mut f = Featurizer::new(&raw).unwrap();
+        let (i, v) = row(&mut f, "free money free money now");
+        assert_eq!(i.len(), 3);
+        let mut mags: Vec<f32> = v.iter().map(|x| x.abs()).collect();
+        mags.sort_by(f32::total_cmp);
+        assert_eq!(mags, [1.0, 2.0, 2.0]);
+    }
+
+    #[test]
+    fn ngram_orders_match_definition() {
+        let mut c = cfg();
+        c.ngrams = 3;
+        c.raw_counts = true;
+        let mut f = Featurizer::new(&c).unwrap();
+        let (i, v) = row(&mut f, "a b c d");
+        let s = field_seed(7, "text");
+        let u: Vec<u64> = ["a", "b", "c", "d"]
+            .iter()
+            .map(|t| xxh3_64_with_seed(t.as_bytes(), s))
+            .collect();
+        let mut want: Vec<(u32, f32)> = u.iter().map(|&h| bucket_sign(h, f.mask)).collect();
+        for w in u.windows(2).chain(u.windows(3)) {
+            want.push(bucket_sign(ngram_hash(s, w), f.mask));
+        }
+        merge(&mut want);
+        assert_eq!(i, want.iter().map(|e| e.0).collect::<Vec<_>>());
+        assert_eq!(v, want.iter().map(|e| e.1).collect::<Vec<_>>());
+    }
+
+    #[test]
+    fn char_ngrams_and_fields_and_numeric() {
+        let mut c = cfg();
+        c.ngrams = 1;
+        c.raw_counts = true;
+        c.char_ngrams = Some("3..3".parse().unwrap());
+        c.text_fields = vec!["subject".into(), "body".into()];
+        c.numeric_fields = vec!["age".into()];
+        let mut f = Featurizer::new(&c).unwrap();
+        let (mut i, mut v) = (Vec::new(), Vec::new());
+        f.begin_row();
+        f.add_text(0, b"hey");
+        f.finish_row(&mut i, &mut v);
+        // "<hey>" has 3 trigrams, plus the unigram.
+        assert_eq!(i.len(), 4);
+        let (mut i2, mut v2) = (Vec::new(), Vec::new());
+        f.begin_row();
+        f.add_text(1, b"hey");
+        f.add_numeric(0, 2.5);
+        f.finish_row(&mut i2, &mut v2);
+        assert_eq!(i2.len(), 5);
+        assert_ne!(i, i2[..4].to_vec(), "fields must hash apart");
+        assert!(v2.iter().any(|x| x.abs() == 2.5));
+    }
+
+    #[test]
+    fn config_validation() {
+        let mut c = cfg();
+        c.log2_buckets = 9;
+        assert!(Featurizer::new(&c).is_err());
+        c.log2_buckets = 29;
+        assert!(Featurizer::new(&c).is_err());
+        let mut c = cfg();
+        c.numeric_fields = vec!["text".into()];
+        assert!(c.validate().is_err());
+        assert!("5..3".parse::<CharNgrams>().is_err());
+        assert!("0..3".parse::<CharNgrams>().is_err());
+        assert_eq!("2..4".parse::<CharNgrams>().unwrap().to_string(), "2..4");
+    }
+}
