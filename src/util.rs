@@ -1,1 +1,135 @@
-//! x
+//! Small helpers shared by the stages: number formatting, memory readings, locks.
+
+use std::fs::OpenOptions;
+use std::io::Write;
+use std::path::{Path, PathBuf};
+
+use crate::error::{Error, IoContext, Result};
+
+/// Format an integer with thousands separators (`1234567` → `1,234,567`).
+pub fn thousands(n: u64) -> String {
+    let s = n.to_string();
+    let mut out = String::with_capacity(s.len() + s.len() / 3);
+    for (i, c) in s.chars().enumerate() {
+        if i > 0 && (s.len() - i) % 3 == 0 {
+            out.push(',');
+        }
+        out.push(c);
+    }
+    out
+}
+
+/// Format a byte count with a binary unit (`1536` → `1.5 KiB`).
+pub fn bytes(n: u64) -> String {
+    const UNITS: [&str; 5] = ["B", "KiB", "MiB", "GiB", "TiB"];
+    let mut v = n as f64;
+    let mut u = 0;
+    while v >= 1024.0 && u + 1 < UNITS.len() {
+        v /= 1024.0;
+        u += 1;
+    }
+    if u == 0 {
+        format!("{n} B")
+    } else {
+        format!("{v:.1} {}", UNITS[u])
+    }
+}
+
+/// Peak and current anonymous resident memory of this process in bytes, read
+/// from `/proc/self/status` (`VmHWM` is for all resident pages; `RssAnon` counts
+/// only memory that is not file-backed, so mapped shards do not count).
+/// Returns `None` where `/proc` is not available.
+pub fn rss_anon() -> Option<u64> {
+    let s = std::fs::read_to_string("/proc/self/status").ok()?;
+    s.lines()
+        .find_map(|l| l.strip_prefix("RssAnon:"))
+        .and_then(|v| v.trim().trim_end_matches("kB").trim().parse::<u64>().ok())
+        .map(|kb| kb * 1024)
+}
+
+/// A lock file held for the life of the value: `DIR/.lock` or `FILE.lock`.
+///
+/// Created with `O_EXCL`; a lock whose owning process no longer runs (checked
+/// through `/proc/PID`) is stale and taken over.
+#[derive(Debug)]
+pub struct Lock {
+    path: PathBuf,
+}
+
+impl Lock {
+    /// Take the lock at `path`, or explain who holds it.
+    pub fn acquire(path: &Path) -> Result<Lock> {
+        for _ in 0..2 {
+            match OpenOptions::new().write(true).create_new(true).open(path) {
+                Ok(mut f) => {
+                    writeln!(f, "{}", std::process::id()).at(path)?;
+                    return Ok(Lock {
+                        path: path.to_path_buf(),
+                    });
+                }
+                Err(e) if e.kind() == std::io::ErrorKind::AlreadyExists => {
+                    let owner = std::fs::read_to_string(path)
+                        .ok()
+                        .and_then(|s| s.trim().parse::<u32>().ok());
+                    let alive =
+                        owner.is_some_and(|pid| Path::new(&format!("/proc/{pid}")).exists());
+                    if alive {
+                        return Err(Error::Invalid(format!(
+                            "{} is locked by running process {}: another tamis command is writing here",
+                            path.display(),
+                            owner.unwrap_or(0)
+                        )));
+                    }
+                    // Stale: its owner died. Remove and retry once.
+                    let _ = std::fs::remove_file(path);
+                }
+                Err(e) => return Err(e).at(path),
+            }
+        }
+        Err(Error::Invalid(format!(
+            "{}: could not take the lock",
+            path.display()
+        )))
+    }
+}
+
+impl Drop for Lock {
+    fn drop(&mut self) {
+        let _ = std::fs::remove_file(&self.path);
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn formats() {
+        assert_eq!(thousands(0), "0");
+        assert_eq!(thousands(999), "999");
+        assert_eq!(thousands(1000), "1,000");
+        assert_eq!(thousands(1234567), "1,234,567");
+        assert_eq!(bytes(512), "512 B");
+        assert_eq!(bytes(1536), "1.5 KiB");
+        assert_eq!(bytes(3 << 30), "3.0 GiB");
+    }
+
+    #[test]
+    fn lock_is_exclusive_and_stale_locks_are_taken() {
+        let dir = tempfile::tempdir().unwrap();
+        let p = dir.path().join(".lock");
+        let l = Lock::acquire(&p).unwrap();
+        let e = Lock::acquire(&p).unwrap_err();
+        assert!(e.to_string().contains("locked by running process"), "{e}");
+        drop(l);
+        assert!(!p.exists());
+        // A lock left by a process that no longer exists (pid beyond pid_max).
+        std::fs::write(&p, "4294967290\n").unwrap();
+        let _l = Lock::acquire(&p).unwrap();
+    }
+
+    #[test]
+    fn rss_anon_reads() {
+        assert!(rss_anon().unwrap() > 0);
+    }
+}

@@ -1,1 +1,257 @@
-//! x
+//! Datasets: a folder of shards listed by a manifest, built by [`ingest`].
+//!
+//! ```text
+//! DIR/manifest.json          the manifest (JSON, checksummed, replaced atomically)
+//! DIR/train-000000.tms ...   training shards
+//! DIR/valid-000007.tms ...   validation shards
+//! DIR/docfreq-000009.tmd     document frequencies of one ingest batch
+//! DIR/.lock                  present while a command writes the dataset
+//! ```
+
+pub mod docfreq;
+pub mod ingest;
+pub mod manifest;
+
+use std::collections::BTreeMap;
+use std::path::{Path, PathBuf};
+
+use serde::Serialize;
+
+use crate::error::{Error, Result};
+use crate::shard::Shard;
+
+pub use ingest::{ingest, Choices, IngestOptions, IngestSummary, Log};
+pub use manifest::{Manifest, ShardEntry, Split};
+
+/// Path of a file listed in the manifest of the dataset in `dir`.
+pub fn file_in(dir: &Path, name: &str) -> PathBuf {
+    dir.join(name)
+}
+
+/// Open the shard of an entry and check that it is the file the manifest lists.
+pub fn open_shard(dir: &Path, e: &ShardEntry) -> Result<Shard> {
+    let path = file_in(dir, &e.file);
+    if !path.exists() {
+        return Err(Error::Corrupt {
+            path,
+            what: "listed in the manifest but missing".into(),
+        });
+    }
+    let s = Shard::open(&path)?;
+    let sum = format!("{:016x}", s.header_checksum());
+    if s.rows() as u64 != e.rows || s.nnz() as u64 != e.nnz || sum != e.checksum {
+        return Err(Error::Mismatch {
+            path,
+            what: format!(
+                "shard holds {} rows, {} nonzeros, checksum {sum}; the manifest lists {} rows, {} nonzeros, checksum {}",
+                s.rows(),
+                s.nnz(),
+                e.rows,
+                e.nnz,
+                e.checksum
+            ),
+        });
+    }
+    Ok(s)
+}
+
+/// Outcome of [`verify`].
+#[derive(Debug, Default)]
+pub struct VerifyReport {
+    /// Files checked.
+    pub checked: usize,
+    /// Bytes checked.
+    pub bytes: u64,
+    /// Problems found, each naming its file.
+    pub problems: Vec<Error>,
+}
+
+/// Recompute every checksum of the dataset in `dir`: manifest, shards (all
+/// sections, structure, labels) and document-frequency files.
+pub fn verify(dir: &Path) -> Result<VerifyReport> {
+    let m = Manifest::load(dir)?;
+    let mut r = VerifyReport {
+        checked: 1,
+        ..Default::default()
+    };
+    let n_labels = m.labels.len() as u32;
+    for e in &m.shards {
+        r.checked += 1;
+        match open_shard(dir, e).and_then(|s| {
+            s.verify(Some(n_labels))?;
+            if s.cols() != m.features.buckets() {
+                return Err(Error::Mismatch {
+                    path: s.path().to_path_buf(),
+                    what: format!(
+                        "shard has {} columns, the dataset {}",
+                        s.cols(),
+                        m.features.buckets()
+                    ),
+                });
+            }
+            Ok(())
+        }) {
+            Ok(()) => r.bytes += e.bytes,
+            Err(err) => r.problems.push(err),
+        }
+    }
+    for d in &m.doc_freq {
+        r.checked += 1;
+        let path = file_in(dir, &d.file);
+        let res = docfreq::DocFreq::open(&path, true).and_then(|f| {
+            let sum = format!("{:016x}", f.checksum());
+            if sum != d.checksum || f.log2_buckets() != m.features.log2_buckets {
+                return Err(Error::Mismatch {
+                    path: path.clone(),
+                    what: "document-frequency file is not the one the manifest lists".into(),
+                });
+            }
+            Ok(())
+        });
+        if let Err(err) = res {
+            r.problems.push(err);
+        }
+    }
+    Ok(r)
+}
+
+/// Per-label row counts in [`Stats`].
+#[derive(Debug, Clone, Serialize)]
+pub struct LabelStats {
+    /// Label.
+    pub name: String,
+    /// Class id.
+    pub id: u32,
+    /// All rows.
+    pub rows: u64,
+    /// Training rows.
+    pub train_rows: u64,
+    /// Validation rows.
+    pub validation_rows: u64,
+}
+
+/// Shard summary in [`Stats`].
+#[derive(Debug, Clone, Serialize)]
+pub struct ShardStats {
+    /// File name.
+    pub file: String,
+    /// Split.
+    pub split: Split,
+    /// Rows.
+    pub rows: u64,
+    /// Nonzeros.
+    pub nnz: u64,
+    /// Bytes.
+    pub bytes: u64,
+    /// Ingest batch.
+    pub batch: u32,
+}
+
+/// Summary of a dataset (`tamis stats`).
+#[derive(Debug, Clone, Serialize)]
+pub struct Stats {
+    /// All rows.
+    pub rows: u64,
+    /// Training rows.
+    pub train_rows: u64,
+    /// Validation rows.
+    pub validation_rows: u64,
+    /// Nonzeros.
+    pub nnz: u64,
+    /// Mean nonzeros per row.
+    pub mean_nnz_per_row: f64,
+    /// Labels with counts.
+    pub labels: Vec<LabelStats>,
+    /// Positive label of a binary task.
+    pub positive: Option<String>,
+    /// Hash buckets.
+    pub buckets: u64,
+    /// Buckets nonzero in at least one training row.
+    pub buckets_used: u64,
+    /// `buckets_used / buckets`.
+    pub bucket_fill: f64,
+    /// Estimated distinct features behind the used buckets, from the occupancy of
+    /// uniform hashing: `D = −m·ln(1 − used/m)`.
+    pub estimated_distinct_features: f64,
+    /// Estimated share of features that share their bucket with another
+    /// feature: `1 − exp(−D/m)`, which equals the fill.
+    pub estimated_collision_share: f64,
+    /// Skipped records by reason, all batches.
+    pub bad: BTreeMap<String, u64>,
+    /// Rows kept with replaced invalid UTF-8.
+    pub lossy_utf8_rows: u64,
+    /// Ingest batches.
+    pub batches: usize,
+    /// Shards.
+    pub shards: Vec<ShardStats>,
+    /// Bytes of all shards.
+    pub shard_bytes: u64,
+}
+
+/// Compute [`Stats`] for the dataset in `dir` (reads the manifest and the
+/// document-frequency files, not the shards).
+pub fn stats(dir: &Path) -> Result<Stats> {
+    let m = Manifest::load(dir)?;
+    let buckets = m.features.buckets();
+    let mut used = vec![false; buckets as usize];
+    for d in &m.doc_freq {
+        let f = docfreq::DocFreq::open(&file_in(dir, &d.file), false)?;
+        for (u, &c) in used.iter_mut().zip(f.counts()?) {
+            *u |= c > 0;
+        }
+    }
+    let buckets_used = used.iter().filter(|&&u| u).count() as u64;
+    let fill = buckets_used as f64 / buckets as f64;
+    let distinct = if buckets_used < buckets {
+        -(buckets as f64) * (1.0 - fill).ln()
+    } else {
+        f64::INFINITY
+    };
+    let rows = m.train_rows() + m.validation_rows();
+    let nnz = m.nnz();
+    Ok(Stats {
+        rows,
+        train_rows: m.train_rows(),
+        validation_rows: m.validation_rows(),
+        nnz,
+        mean_nnz_per_row: if rows > 0 {
+            nnz as f64 / rows as f64
+        } else {
+            0.0
+        },
+        labels: m
+            .labels
+            .iter()
+            .enumerate()
+            .map(|(i, l)| LabelStats {
+                name: l.name.clone(),
+                id: i as u32,
+                rows: l.train_rows + l.validation_rows,
+                train_rows: l.train_rows,
+                validation_rows: l.validation_rows,
+            })
+            .collect(),
+        positive: m.positive.clone(),
+        buckets,
+        buckets_used,
+        bucket_fill: fill,
+        estimated_distinct_features: distinct,
+        estimated_collision_share: 1.0 - (-distinct / buckets as f64).exp(),
+        bad: m.bad_totals(),
+        lossy_utf8_rows: m.batches.iter().map(|b| b.lossy_utf8_rows).sum(),
+        batches: m.batches.len(),
+        shards: m
+            .shards
+            .iter()
+            .map(|s| ShardStats {
+                file: s.file.clone(),
+                split: s.split,
+                rows: s.rows,
+                nnz: s.nnz,
+                bytes: s.bytes,
+                batch: s.batch,
+            })
+            .collect(),
+        shard_bytes: m.shards.iter().map(|s| s.bytes).sum(),
+    })
+}

@@ -7,7 +7,7 @@
 //! chunks can be parsed on any thread and the results put back in input order.
 //! [`parse`] turns a chunk into records or counted bad lines.
 
-mod parse;
+pub mod parse;
 
 use std::fs::File;
 use std::io::{self, BufReader, Read};

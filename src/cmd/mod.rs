@@ -1,0 +1,59 @@
+//! Subcommands, one file each. Each has its own `Args` and a `run`.
+
+pub mod demo;
+pub mod ingest;
+pub mod stats;
+pub mod verify;
+
+use std::process::ExitCode;
+
+use clap::{Parser, Subcommand};
+
+/// tamis: train and run max-margin linear text classifiers on data that does not
+/// fit in memory.
+///
+/// Exit status: 0 on success, 1 on an error (the message starts with `error:`),
+/// 2 on a usage error.
+#[derive(Debug, Parser)]
+#[command(name = "tamis", version, about, long_about = None, max_term_width = 100)]
+pub struct Cli {
+    #[command(subcommand)]
+    command: Command,
+}
+
+#[derive(Debug, Subcommand)]
+enum Command {
+    /// Turn labelled raw text (TSV, CSV, JSON Lines; plain, gzip or zstd) into a
+    /// dataset of hashed sparse shards.
+    Ingest(Box<ingest::Args>),
+    /// Summarise a dataset: rows, labels, nonzeros, bucket fill, shards.
+    Stats(stats::Args),
+    /// Recompute every checksum of a dataset or a tamis file and report damage.
+    Verify(verify::Args),
+    /// Run the whole job on built-in invented demo data.
+    Demo(demo::Args),
+}
+
+/// Run the parsed command line.
+pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
+    match cli.command {
+        Command::Ingest(a) => ingest::run(*a),
+        Command::Stats(a) => stats::run(a),
+        Command::Verify(a) => verify::run(a),
+        Command::Demo(a) => demo::run(a),
+    }
+}
+
+/// Default thread count: every core.
+pub fn default_threads() -> usize {
+    std::thread::available_parallelism().map_or(1, |n| n.get())
+}
+
+/// A log that prints to standard error unless quiet.
+pub fn stderr_log(quiet: bool) -> tamis::dataset::Log {
+    std::sync::Arc::new(move |s: &str| {
+        if !quiet {
+            eprintln!("{s}");
+        }
+    })
+}

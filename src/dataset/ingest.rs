@@ -1,0 +1,1016 @@
+//! The ingest pipeline: raw inputs → parsed records → hashed rows → shards.
+//!
+//! Three stages run at once. A reader thread decompresses the inputs in order
+//! and cuts them into chunks; the calling thread parses and hashes batches of
+//! chunks on a rayon pool (`par_iter` keeps their order); a writer thread appends
+//! the rows, in input order, to shard writers. The dataset written therefore
+//! does not depend on the number of threads.
+//!
+//! Rows are spread over several open training shard writers: row `i` (counting
+//! training rows over the whole dataset, appends included) goes to writer
+//! `xxh3_64(le_bytes(i), scatter_seed) mod W`; a writer's shard is closed after
+//! `shard_rows` rows and a new one opened in its place. Validation rows go to
+//! their own shards.
+//!
+//! Crash safety: new shards are written under new names and only become part of
+//! the dataset when the manifest that lists them is renamed into place. A failed
+//! run removes what it wrote; files left by a killed run are removed by the next
+//! run in the same folder.
+
+use std::collections::{BTreeMap, HashMap};
+use std::io::IsTerminal;
+use std::path::{Path, PathBuf};
+use std::sync::atomic::{AtomicU64, Ordering};
+use std::sync::mpsc::{sync_channel, Receiver, SyncSender};
+use std::sync::Arc;
+use std::time::Instant;
+
+use rayon::prelude::*;
+use xxhash_rust::xxh3::xxh3_64_with_seed;
+
+use super::docfreq;
+use super::manifest::{
+    Batch, DocFreqEntry, InputEntry, LabelEntry, Manifest, ScatterRule, ShardEntry, Split,
+    SplitRule, FORMAT_NAME, MANIFEST_FILE, VERSION,
+};
+use crate::error::{Error, IoContext, Result};
+use crate::features::{CharNgrams, FeatureConfig, Featurizer, HASH_SCHEME};
+use crate::input::{
+    self, parse_chunk, BadLine, BadReason, Chunk, ChunkReader, Fingerprint, InputSpec, LabelMode,
+    ParseScratch, Source,
+};
+use crate::shard::ShardWriter;
+use crate::util::{self, Lock};
+
+/// Default seed of hashing, split and scatter.
+pub const DEFAULT_SEED: u64 = 1;
+/// Default log2 of the bucket count.
+pub const DEFAULT_LOG2_BUCKETS: u32 = 20;
+/// Default word n-gram order.
+pub const DEFAULT_NGRAMS: u32 = 2;
+/// Default validation fraction.
+pub const DEFAULT_VALIDATION: f64 = 0.1;
+/// Default rows per shard.
+pub const DEFAULT_SHARD_ROWS: u64 = 1 << 18;
+/// Default number of open training shard writers.
+pub const DEFAULT_SCATTER: u32 = 8;
+/// Reported examples per bad-line reason.
+pub const EXAMPLES_PER_REASON: u32 = 10;
+/// After this many records, a run in which none was usable stops at once.
+const EARLY_ABORT_RECORDS: u64 = 1000;
+
+/// Settings chosen on the command line; `None` means "not given": the default
+/// for a new dataset, the stored value when appending.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct Choices {
+    /// Seed of hashing, split and scatter.
+    pub seed: Option<u64>,
+    /// log2 of the bucket count.
+    pub log2_buckets: Option<u32>,
+    /// Word n-gram order.
+    pub ngrams: Option<u32>,
+    /// Character n-grams.
+    pub char_ngrams: Option<CharNgrams>,
+    /// Raw counts instead of damped, normalised values.
+    pub raw_counts: Option<bool>,
+    /// Validation fraction.
+    pub validation: Option<f64>,
+    /// Positive label of a binary task.
+    pub positive: Option<String>,
+    /// Rows per shard.
+    pub shard_rows: Option<u64>,
+    /// Open training shard writers.
+    pub scatter: Option<u32>,
+}
+
+/// Everything `ingest` needs.
+#[derive(Debug, Clone)]
+pub struct IngestOptions {
+    /// Input paths (`-` for standard input), read in order.
+    pub inputs: Vec<String>,
+    /// Dataset folder.
+    pub out: PathBuf,
+    /// How records are read.
+    pub spec: InputSpec,
+    /// Settings given by the user.
+    pub choices: Choices,
+    /// Add to the dataset at `out` instead of creating one.
+    pub append: bool,
+    /// Replace an existing dataset, or use a non-empty folder.
+    pub force: bool,
+    /// Worker threads for parsing and hashing.
+    pub threads: usize,
+    /// Fail when more than this fraction of records is unusable.
+    pub max_bad_fraction: f64,
+    /// Draw a progress bar when standard error is a terminal.
+    pub progress: bool,
+}
+
+/// What an ingest run did.
+#[derive(Debug, Clone, PartialEq)]
+pub struct IngestSummary {
+    /// Batch number written.
+    pub batch: u32,
+    /// Training rows added.
+    pub train_rows: u64,
+    /// Validation rows added.
+    pub validation_rows: u64,
+    /// Nonzeros added.
+    pub nnz: u64,
+    /// Shards added.
+    pub shards: usize,
+    /// Skipped records by reason.
+    pub bad: BTreeMap<String, u64>,
+    /// Rows kept with replaced invalid UTF-8.
+    pub lossy_utf8_rows: u64,
+    /// Blank lines passed over.
+    pub blank_lines: u64,
+    /// Raw input bytes read.
+    pub input_bytes: u64,
+    /// Wall-clock seconds.
+    pub seconds: f64,
+}
+
+impl IngestSummary {
+    /// Skipped records in all.
+    pub fn bad_total(&self) -> u64 {
+        self.bad.values().sum()
+    }
+
+    /// The one-line summary printed at the end of `tamis ingest`.
+    pub fn line(&self) -> String {
+        let rows = self.train_rows + self.validation_rows;
+        let secs = self.seconds.max(1e-9);
+        format!(
+            "ingested {} rows ({} train, {} validation), {} skipped, {} nonzeros, {} shards, in {:.2} s ({:.1} MB/s, {} rows/s)",
+            util::thousands(rows),
+            util::thousands(self.train_rows),
+            util::thousands(self.validation_rows),
+            util::thousands(self.bad_total()),
+            util::thousands(self.nnz),
+            self.shards,
+            self.seconds,
+            self.input_bytes as f64 / 1e6 / secs,
+            util::thousands((rows as f64 / secs) as u64),
+        )
+    }
+}
+
+/// Sink for messages (bad-line reports, notices) printed while ingesting.
+pub type Log = Arc<dyn Fn(&str) + Send + Sync>;
+
+fn seed_for(seed: u64, what: &str) -> u64 {
+    xxh3_64_with_seed(what.as_bytes(), seed)
+}
+
+/// Check a given choice against a stored value when appending.
+fn agree<T: PartialEq + std::fmt::Debug>(
+    path: &Path,
+    name: &str,
+    given: Option<&T>,
+    stored: &T,
+) -> Result<()> {
+    match given {
+        Some(g) if g != stored => Err(Error::Mismatch {
+            path: path.to_path_buf(),
+            what: format!(
+                "{name} {g:?} contradicts the dataset's {stored:?}; leave it out to use the stored value"
+            ),
+        }),
+        _ => Ok(()),
+    }
+}
+
+/// Build the manifest a new dataset starts from.
+fn new_manifest(opts: &IngestOptions) -> Result<Manifest> {
+    let c = &opts.choices;
+    let seed = c.seed.unwrap_or(DEFAULT_SEED);
+    let features = FeatureConfig {
+        scheme: HASH_SCHEME.into(),
+        hash_seed: seed,
+        log2_buckets: c.log2_buckets.unwrap_or(DEFAULT_LOG2_BUCKETS),
+        ngrams: c.ngrams.unwrap_or(DEFAULT_NGRAMS),
+        char_ngrams: c.char_ngrams,
+        raw_counts: c.raw_counts.unwrap_or(false),
+        text_fields: opts.spec.text.clone(),
+        numeric_fields: opts.spec.numeric.clone(),
+    };
+    features.validate()?;
+    let validation = c.validation.unwrap_or(DEFAULT_VALIDATION);
+    if !(0.0..1.0).contains(&validation) {
+        return Err(Error::Invalid(format!(
+            "--validation must be in [0, 1), got {validation}"
+        )));
+    }
+    let shard_rows = c.shard_rows.unwrap_or(DEFAULT_SHARD_ROWS);
+    let writers = c.scatter.unwrap_or(DEFAULT_SCATTER);
+    if shard_rows == 0 || !(1..=1024).contains(&writers) {
+        return Err(Error::Invalid(
+            "--shard-rows must be positive and --scatter in 1..=1024".into(),
+        ));
+    }
+    Ok(Manifest {
+        checksum: String::new(),
+        format: FORMAT_NAME.into(),
+        format_version: VERSION,
+        written_by: format!("tamis {}", env!("CARGO_PKG_VERSION")),
+        features,
+        positive: c.positive.clone(),
+        split: SplitRule {
+            rule: "xxh3-content".into(),
+            seed: seed_for(seed, "split"),
+            validation_fraction: validation,
+        },
+        scatter: ScatterRule {
+            seed: seed_for(seed, "scatter"),
+            writers,
+            shard_rows,
+        },
+        labels: vec![],
+        shards: vec![],
+        doc_freq: vec![],
+        batches: vec![],
+        next_shard: 0,
+    })
+}
+
+/// Check that an append's choices and input fields agree with the dataset.
+fn check_append(m: &Manifest, opts: &IngestOptions, path: &Path) -> Result<()> {
+    let c = &opts.choices;
+    let f = &m.features;
+    agree(path, "--seed", c.seed.as_ref(), &f.hash_seed)?;
+    agree(
+        path,
+        "--log2-buckets",
+        c.log2_buckets.as_ref(),
+        &f.log2_buckets,
+    )?;
+    agree(path, "--ngrams", c.ngrams.as_ref(), &f.ngrams)?;
+    agree(
+        path,
+        "--char-ngrams",
+        c.char_ngrams.map(Some).as_ref(),
+        &f.char_ngrams,
+    )?;
+    agree(path, "--raw-counts", c.raw_counts.as_ref(), &f.raw_counts)?;
+    agree(
+        path,
+        "--validation",
+        c.validation.as_ref(),
+        &m.split.validation_fraction,
+    )?;
+    agree(
+        path,
+        "--positive",
+        c.positive.clone().map(Some).as_ref(),
+        &m.positive,
+    )?;
+    agree(
+        path,
+        "--shard-rows",
+        c.shard_rows.as_ref(),
+        &m.scatter.shard_rows,
+    )?;
+    agree(path, "--scatter", c.scatter.as_ref(), &m.scatter.writers)?;
+    agree(path, "text fields", Some(&opts.spec.text), &f.text_fields)?;
+    agree(
+        path,
+        "numeric fields",
+        Some(&opts.spec.numeric),
+        &f.numeric_fields,
+    )?;
+    Ok(())
+}
+
+/// Whether a file name is one tamis writes into a dataset folder.
+fn is_ours(name: &str) -> bool {
+    name == MANIFEST_FILE
+        || name.contains(".tmp-")
+        || ((name.starts_with("train-") || name.starts_with("valid-")) && name.ends_with(".tms"))
+        || (name.starts_with("docfreq-") && name.ends_with(".tmd"))
+}
+
+/// Prepare the folder: create it, take the lock, load or refuse an existing
+/// dataset, and remove files left by an interrupted run.
+fn prepare(opts: &IngestOptions, log: &Log) -> Result<(Lock, Manifest, Option<Manifest>)> {
+    let dir = &opts.out;
+    std::fs::create_dir_all(dir).at(dir)?;
+    let lock = Lock::acquire(&dir.join(".lock"))?;
+    let mpath = Manifest::path_in(dir);
+    let existing = if mpath.exists() {
+        Some(Manifest::load(dir)?)
+    } else {
+        None
+    };
+    let (manifest, replaced) = match (&existing, opts.append) {
+        (Some(m), true) => {
+            check_append(m, opts, &mpath)?;
+            (m.clone(), None)
+        }
+        (None, true) => {
+            return Err(Error::Invalid(format!(
+                "{}: --append needs an existing dataset, and there is none here",
+                dir.display()
+            )))
+        }
+        (Some(_), false) if !opts.force => {
+            return Err(Error::Invalid(format!(
+                "{} already holds a dataset: pass --append to add to it or --force to replace it",
+                dir.display()
+            )))
+        }
+        (Some(old), false) => {
+            let mut m = new_manifest(opts)?;
+            // Fresh names, so the old dataset stays whole until the new one is in place.
+            m.next_shard = old.next_shard;
+            (m, Some(old.clone()))
+        }
+        (None, false) => (new_manifest(opts)?, None),
+    };
+    let referenced: std::collections::HashSet<&str> = existing
+        .iter()
+        .flat_map(|m| {
+            m.shards
+                .iter()
+                .map(|s| s.file.as_str())
+                .chain(m.doc_freq.iter().map(|d| d.file.as_str()))
+        })
+        .collect();
+    let mut leftovers = Vec::new();
+    let mut foreign = Vec::new();
+    for e in std::fs::read_dir(dir).at(dir)? {
+        let e = e.at(dir)?;
+        let name = e.file_name().to_string_lossy().into_owned();
+        if name == ".lock" || name == MANIFEST_FILE {
+            continue;
+        }
+        if is_ours(&name) {
+            if !referenced.contains(name.as_str()) {
+                leftovers.push(e.path());
+            }
+        } else {
+            foreign.push(name);
+        }
+    }
+    if existing.is_none() && !foreign.is_empty() && !opts.force {
+        foreign.sort();
+        return Err(Error::Invalid(format!(
+            "{} is not empty and holds no dataset (found {}); choose an empty folder or pass --force",
+            dir.display(),
+            foreign.iter().take(3).cloned().collect::<Vec<_>>().join(", ")
+        )));
+    }
+    if !leftovers.is_empty() {
+        for p in &leftovers {
+            std::fs::remove_file(p).at(p)?;
+        }
+        log(&format!(
+            "removed {} file(s) left in {} by an interrupted ingest",
+            leftovers.len(),
+            dir.display()
+        ));
+    }
+    Ok((lock, manifest, replaced))
+}
+
+/// Rows of one chunk after parsing and hashing, ready to be written.
+#[derive(Default)]
+struct ChunkOut {
+    input: usize,
+    labels: String,
+    label_ends: Vec<u32>,
+    validation: Vec<bool>,
+    row_ends: Vec<u32>,
+    indices: Vec<u32>,
+    values: Vec<f32>,
+    bad: Vec<BadLine>,
+    blank: u64,
+    lossy: u64,
+}
+
+struct Worker {
+    feat: Featurizer,
+    scratch: ParseScratch,
+}
+
+fn process(
+    chunk: &Chunk,
+    spec: &InputSpec,
+    w: &mut Worker,
+    split_seed: u64,
+    fraction: f64,
+) -> ChunkOut {
+    let mut out = ChunkOut {
+        input: chunk.input,
+        ..ChunkOut::default()
+    };
+    let feat = &mut w.feat;
+    let mut empty = Vec::new();
+    let counts = parse_chunk(
+        chunk,
+        spec,
+        LabelMode::Required,
+        &mut w.scratch,
+        |f| {
+            feat.begin_row();
+            let mut invalid = 0;
+            for (i, t) in f.texts.iter().enumerate() {
+                invalid += feat.add_text(i, t).invalid_utf8;
+            }
+            for (i, v) in f.numbers.iter().enumerate() {
+                if let Some(v) = v {
+                    feat.add_numeric(i, *v);
+                }
+            }
+            if feat.is_empty() {
+                empty.push(BadLine {
+                    reason: BadReason::EmptyText,
+                    line: f.line,
+                    detail: "no word in the text".into(),
+                });
+                return;
+            }
+            feat.finish_row(&mut out.indices, &mut out.values);
+            out.row_ends.push(out.indices.len() as u32);
+            out.labels.push_str(f.label.as_deref().unwrap_or(""));
+            out.label_ends.push(out.labels.len() as u32);
+            let h = xxh3_64_with_seed(f.raw, split_seed);
+            out.validation
+                .push(((h >> 11) as f64) * (1.0 / (1u64 << 53) as f64) < fraction);
+            if f.lossy || invalid > 0 {
+                out.lossy += 1;
+            }
+        },
+        |b| out.bad.push(b),
+    );
+    if !empty.is_empty() {
+        out.bad.extend(empty);
+        out.bad.sort_by_key(|b| b.line);
+    }
+    out.blank = counts.blank;
+    out
+}
+
+/// Files written by this run, removed unless the run commits.
+struct Written {
+    paths: Vec<PathBuf>,
+    committed: bool,
+}
+
+impl Drop for Written {
+    fn drop(&mut self) {
+        if !self.committed {
+            for p in &self.paths {
+                let _ = std::fs::remove_file(p);
+            }
+        }
+    }
+}
+
+/// The writer stage.
+struct Sink {
+    dir: PathBuf,
+    m: Manifest,
+    batch: u32,
+    cols: u64,
+    label_ids: HashMap<String, u32>,
+    train: Vec<Option<ShardWriter>>,
+    val: Option<ShardWriter>,
+    new_shards: Vec<ShardEntry>,
+    written: Written,
+    df: Vec<u32>,
+    train_index: u64,
+    train_rows: u64,
+    val_rows: u64,
+    nnz: u64,
+    bad: [u64; BadReason::ALL.len()],
+    shown: [u32; BadReason::ALL.len()],
+    lossy: u64,
+    blank: u64,
+    inputs: Vec<InputEntry>,
+    per_input: Vec<(u64, u64)>,
+    names: Vec<String>,
+    log: Log,
+    rows_done: Arc<AtomicU64>,
+}
+
+impl Sink {
+    fn new(
+        dir: &Path,
+        m: Manifest,
+        names: Vec<String>,
+        log: Log,
+        rows_done: Arc<AtomicU64>,
+    ) -> Self {
+        let label_ids = m
+            .labels
+            .iter()
+            .enumerate()
+            .map(|(i, l)| (l.name.clone(), i as u32))
+            .collect();
+        let batch = m.batches.len() as u32;
+        let writers = m.scatter.writers as usize;
+        Sink {
+            dir: dir.to_path_buf(),
+            cols: m.features.buckets(),
+            df: vec![0u32; m.features.buckets() as usize],
+            train_index: m.train_rows(),
+            per_input: vec![(0, 0); names.len()],
+            m,
+            batch,
+            label_ids,
+            train: (0..writers).map(|_| None).collect(),
+            val: None,
+            new_shards: vec![],
+            written: Written {
+                paths: vec![],
+                committed: false,
+            },
+            train_rows: 0,
+            val_rows: 0,
+            nnz: 0,
+            bad: [0; BadReason::ALL.len()],
+            shown: [0; BadReason::ALL.len()],
+            lossy: 0,
+            blank: 0,
+            inputs: vec![],
+            names,
+            log,
+            rows_done,
+        }
+    }
+
+    fn open_writer(&mut self, split: Split) -> Result<ShardWriter> {
+        let prefix = match split {
+            Split::Train => "train",
+            Split::Validation => "valid",
+        };
+        let name = format!("{prefix}-{:06}.tms", self.m.next_shard);
+        self.m.next_shard += 1;
+        let path = self.dir.join(&name);
+        self.written.paths.push(path.clone());
+        ShardWriter::create(&path, self.cols)
+    }
+
+    fn close_writer(&mut self, w: ShardWriter, split: Split) -> Result<()> {
+        let info = w.finish()?;
+        self.new_shards.push(ShardEntry {
+            file: info
+                .path
+                .file_name()
+                .map(|n| n.to_string_lossy().into_owned())
+                .unwrap_or_default(),
+            split,
+            rows: info.rows,
+            nnz: info.nnz,
+            bytes: info.bytes,
+            checksum: format!("{:016x}", info.checksum),
+            batch: self.batch,
+        });
+        Ok(())
+    }
+
+    fn label_id(&mut self, name: &str, validation: bool) -> u32 {
+        let id = match self.label_ids.get(name) {
+            Some(&id) => id,
+            None => {
+                let id = self.m.labels.len() as u32;
+                self.m.labels.push(LabelEntry {
+                    name: name.to_string(),
+                    train_rows: 0,
+                    validation_rows: 0,
+                });
+                self.label_ids.insert(name.to_string(), id);
+                id
+            }
+        };
+        let e = &mut self.m.labels[id as usize];
+        if validation {
+            e.validation_rows += 1;
+        } else {
+            e.train_rows += 1;
+        }
+        id
+    }
+
+    fn push(&mut self, c: ChunkOut) -> Result<()> {
+        let shard_rows = self.m.scatter.shard_rows;
+        let writers = self.m.scatter.writers as u64;
+        let scatter_seed = self.m.scatter.seed;
+        let mask = self.cols - 1;
+        let (mut lstart, mut rstart) = (0usize, 0usize);
+        for r in 0..c.row_ends.len() {
+            let lend = c.label_ends[r] as usize;
+            let rend = c.row_ends[r] as usize;
+            let validation = c.validation[r];
+            let label = self.label_id(&c.labels[lstart..lend], validation);
+            let (idx, val) = (&c.indices[rstart..rend], &c.values[rstart..rend]);
+            if validation {
+                if self.val.is_none() {
+                    self.val = Some(self.open_writer(Split::Validation)?);
+                }
+                let w = self.val.as_mut().expect("opened");
+                w.push(label, idx, val)?;
+                if w.rows() >= shard_rows {
+                    let w = self.val.take().expect("open");
+                    self.close_writer(w, Split::Validation)?;
+                }
+                self.val_rows += 1;
+            } else {
+                let slot = (xxh3_64_with_seed(&self.train_index.to_le_bytes(), scatter_seed)
+                    % writers) as usize;
+                self.train_index += 1;
+                if self.train[slot].is_none() {
+                    self.train[slot] = Some(self.open_writer(Split::Train)?);
+                }
+                let w = self.train[slot].as_mut().expect("opened");
+                w.push(label, idx, val)?;
+                if w.rows() >= shard_rows {
+                    let w = self.train[slot].take().expect("open");
+                    self.close_writer(w, Split::Train)?;
+                }
+                for &i in idx {
+                    let d = &mut self.df[(i as u64 & mask) as usize];
+                    *d = d.saturating_add(1);
+                }
+                self.train_rows += 1;
+            }
+            self.nnz += idx.len() as u64;
+            lstart = lend;
+            rstart = rend;
+        }
+        let name = &self.names[c.input];
+        for b in &c.bad {
+            let k = b.reason.index();
+            self.bad[k] += 1;
+            if self.shown[k] < EXAMPLES_PER_REASON {
+                self.shown[k] += 1;
+                let more = if self.shown[k] == EXAMPLES_PER_REASON {
+                    " (further lines with this problem are counted, not shown)"
+                } else {
+                    ""
+                };
+                (self.log)(&format!(
+                    "{name}:{}: skipped ({}): {}{more}",
+                    b.line, b.reason, b.detail
+                ));
+            }
+        }
+        self.per_input[c.input].0 += c.row_ends.len() as u64;
+        self.per_input[c.input].1 += c.bad.len() as u64;
+        self.lossy += c.lossy;
+        self.blank += c.blank;
+        let good = self.train_rows + self.val_rows;
+        self.rows_done.store(good, Ordering::Relaxed);
+        let bad: u64 = self.bad.iter().sum();
+        if good == 0 && bad >= EARLY_ABORT_RECORDS {
+            return Err(Error::Invalid(format!(
+                "the first {} records were all unusable: is --format right? nothing was written to the dataset",
+                util::thousands(bad)
+            )));
+        }
+        Ok(())
+    }
+
+    fn input_done(&mut self, input: usize, fp: Fingerprint) {
+        let (rows, bad) = self.per_input[input];
+        self.inputs.push(InputEntry {
+            fingerprint: fp,
+            rows,
+            bad,
+        });
+    }
+
+    fn finish(
+        mut self,
+        spec: &InputSpec,
+        max_bad: f64,
+        replaced: Option<Manifest>,
+    ) -> Result<(Manifest, IngestSummary)> {
+        let good = self.train_rows + self.val_rows;
+        let bad: u64 = self.bad.iter().sum();
+        let seen = good + bad;
+        if seen > 0 && bad as f64 > max_bad * seen as f64 {
+            return Err(Error::TooManyBad {
+                bad,
+                seen,
+                fraction: 100.0 * bad as f64 / seen as f64,
+                limit: 100.0 * max_bad,
+            });
+        }
+        if good == 0 {
+            return Err(Error::Invalid(
+                "the input holds no usable record; nothing was written to the dataset".into(),
+            ));
+        }
+        if let Some(p) = &self.m.positive {
+            if !self.label_ids.contains_key(p) {
+                let mut names: Vec<&str> = self.m.labels.iter().map(|l| l.name.as_str()).collect();
+                names.truncate(10);
+                return Err(Error::Invalid(format!(
+                    "--positive {p:?} is not among the labels found ({})",
+                    names.join(", ")
+                )));
+            }
+        }
+        let writers: Vec<ShardWriter> = self.train.iter_mut().filter_map(Option::take).collect();
+        for w in writers {
+            self.close_writer(w, Split::Train)?;
+        }
+        if let Some(w) = self.val.take() {
+            self.close_writer(w, Split::Validation)?;
+        }
+        let df_name = format!("docfreq-{:06}.tmd", self.m.next_shard);
+        self.m.next_shard += 1;
+        let df_path = self.dir.join(&df_name);
+        self.written.paths.push(df_path.clone());
+        let sum = docfreq::write(
+            &df_path,
+            self.m.features.log2_buckets,
+            self.train_rows,
+            self.batch,
+            &self.df,
+        )?;
+        self.m.doc_freq.push(DocFreqEntry {
+            file: df_name,
+            batch: self.batch,
+            train_rows: self.train_rows,
+            checksum: format!("{sum:016x}"),
+        });
+        let bad_map: BTreeMap<String, u64> = BadReason::ALL
+            .iter()
+            .map(|r| (r.key().to_string(), self.bad[r.index()]))
+            .collect();
+        let new_count = self.new_shards.len();
+        self.m.shards.append(&mut self.new_shards);
+        self.m.written_by = format!("tamis {}", env!("CARGO_PKG_VERSION"));
+        self.m.batches.push(Batch {
+            id: self.batch,
+            created_unix: std::time::SystemTime::now()
+                .duration_since(std::time::UNIX_EPOCH)
+                .map(|d| d.as_secs())
+                .unwrap_or(0),
+            input: spec.clone(),
+            inputs: std::mem::take(&mut self.inputs),
+            train_rows: self.train_rows,
+            validation_rows: self.val_rows,
+            nnz: self.nnz,
+            bad: bad_map.clone(),
+            lossy_utf8_rows: self.lossy,
+            blank_lines: self.blank,
+        });
+        self.m.store(&self.dir)?;
+        self.written.committed = true;
+        if let Some(old) = replaced {
+            for f in old
+                .shards
+                .iter()
+                .map(|s| &s.file)
+                .chain(old.doc_freq.iter().map(|d| &d.file))
+            {
+                let _ = std::fs::remove_file(self.dir.join(f));
+            }
+        }
+        let summary = IngestSummary {
+            batch: self.batch,
+            train_rows: self.train_rows,
+            validation_rows: self.val_rows,
+            nnz: self.nnz,
+            shards: new_count,
+            bad: bad_map,
+            lossy_utf8_rows: self.lossy,
+            blank_lines: self.blank,
+            input_bytes: 0,
+            seconds: 0.0,
+        };
+        Ok((self.m, summary))
+    }
+}
+
+enum ReadMsg {
+    Chunk(Chunk),
+    Done(usize, Fingerprint),
+    Failed(Error),
+}
+
+enum WriteMsg {
+    Rows(Vec<ChunkOut>),
+    Done(usize, Fingerprint),
+}
+
+fn read_inputs(
+    inputs: &[String],
+    spec: &InputSpec,
+    progress: Arc<AtomicU64>,
+    tx: SyncSender<ReadMsg>,
+) {
+    let mut seq = 0u64;
+    for (i, path) in inputs.iter().enumerate() {
+        let mut run = || -> Result<Fingerprint> {
+            let src = Source::open(path, progress.clone())?;
+            let mut r = ChunkReader::new(src, i, spec)?;
+            while let Some(c) = r.next_chunk(seq)? {
+                seq += 1;
+                if tx.send(ReadMsg::Chunk(c)).is_err() {
+                    // The consumer stopped (an error downstream); stop quietly.
+                    return Err(Error::Invalid(String::new()));
+                }
+            }
+            Ok(r.source().fingerprint())
+        };
+        match run() {
+            Ok(fp) => {
+                if tx.send(ReadMsg::Done(i, fp)).is_err() {
+                    return;
+                }
+            }
+            Err(e) => {
+                let _ = tx.send(ReadMsg::Failed(e));
+                return;
+            }
+        }
+    }
+}
+
+fn write_rows(mut sink: Sink, rx: Receiver<WriteMsg>) -> Result<Sink> {
+    for msg in rx {
+        match msg {
+            WriteMsg::Rows(outs) => {
+                for o in outs {
+                    sink.push(o)?;
+                }
+            }
+            WriteMsg::Done(i, fp) => sink.input_done(i, fp),
+        }
+    }
+    Ok(sink)
+}
+
+fn progress_bar(enabled: bool, total: Option<u64>) -> Option<indicatif::ProgressBar> {
+    if !enabled || !std::io::stderr().is_terminal() {
+        return None;
+    }
+    let bar = match total {
+        Some(t) => indicatif::ProgressBar::new(t),
+        None => indicatif::ProgressBar::new_spinner(),
+    };
+    bar.set_draw_target(indicatif::ProgressDrawTarget::stderr());
+    let style = match total {
+        Some(_) => "{bar:30} {bytes}/{total_bytes} {binary_bytes_per_sec} {msg} eta {eta}",
+        None => "{spinner} {bytes} {binary_bytes_per_sec} {msg}",
+    };
+    if let Ok(s) = indicatif::ProgressStyle::with_template(style) {
+        bar.set_style(s);
+    }
+    Some(bar)
+}
+
+/// Run an ingest. Messages (bad-line reports, notices) go to `log`.
+pub fn ingest(opts: &IngestOptions, log: Log) -> Result<IngestSummary> {
+    if opts.inputs.is_empty() {
+        return Err(Error::Invalid("no input given".into()));
+    }
+    if opts.spec.text.len() > input::parse::MAX_FIELDS
+        || opts.spec.numeric.len() > input::parse::MAX_FIELDS
+    {
+        return Err(Error::Invalid(format!(
+            "at most {} text and {} numeric fields",
+            input::parse::MAX_FIELDS,
+            input::parse::MAX_FIELDS
+        )));
+    }
+    if !(0.0..=1.0).contains(&opts.max_bad_fraction) {
+        return Err(Error::Invalid(
+            "--max-bad-fraction must be in [0, 1]".into(),
+        ));
+    }
+    if opts.inputs.iter().filter(|p| *p == "-").count() > 1 {
+        return Err(Error::Invalid(
+            "standard input (-) can be read only once".into(),
+        ));
+    }
+    for p in &opts.inputs {
+        if p != "-" && !Path::new(p).exists() {
+            return Err(Error::Invalid(format!("{p}: no such file")));
+        }
+    }
+    let start = Instant::now();
+    let (_lock, manifest, replaced) = prepare(opts, &log)?;
+    let threads = opts.threads.max(1);
+    let pool = rayon::ThreadPoolBuilder::new()
+        .num_threads(threads)
+        .thread_name(|i| format!("tamis-ingest-{i}"))
+        .build()
+        .map_err(|e| Error::Invalid(format!("cannot start {threads} threads: {e}")))?;
+    let total: Option<u64> = opts.inputs.iter().map(|p| input::file_size(p)).sum();
+    let bar = progress_bar(opts.progress, total);
+    let log: Log = match &bar {
+        Some(b) => {
+            let b = b.clone();
+            let inner = log.clone();
+            Arc::new(move |s: &str| b.suspend(|| inner(s)))
+        }
+        None => log,
+    };
+    let read_bytes = Arc::new(AtomicU64::new(0));
+    let rows_done = Arc::new(AtomicU64::new(0));
+    let names: Vec<String> = opts
+        .inputs
+        .iter()
+        .map(|p| {
+            if p == "-" {
+                "stdin".to_string()
+            } else {
+                p.clone()
+            }
+        })
+        .collect();
+    let split_seed = manifest.split.seed;
+    let fraction = manifest.split.validation_fraction;
+    let cfg = manifest.features.clone();
+    Featurizer::new(&cfg)?;
+    let sink = Sink::new(&opts.out, manifest, names, log.clone(), rows_done.clone());
+    let spec = &opts.spec;
+    let batch_len = 2 * threads;
+
+    let result: Result<Sink> = std::thread::scope(|s| {
+        let (rtx, rrx) = sync_channel::<ReadMsg>(batch_len + 2);
+        let (wtx, wrx) = sync_channel::<WriteMsg>(2);
+        let rb = read_bytes.clone();
+        let inputs = &opts.inputs;
+        s.spawn(move || read_inputs(inputs, spec, rb, rtx));
+        let writer = s.spawn(move || write_rows(sink, wrx));
+        let mut failure = None;
+        let mut pending_done = None;
+        'outer: loop {
+            let mut batch = Vec::with_capacity(batch_len);
+            let mut finished = false;
+            while batch.len() < batch_len {
+                match rrx.recv() {
+                    Ok(ReadMsg::Chunk(c)) => batch.push(c),
+                    Ok(ReadMsg::Done(i, fp)) => {
+                        pending_done = Some((i, fp));
+                        break;
+                    }
+                    Ok(ReadMsg::Failed(e)) => {
+                        failure = Some(e);
+                        break 'outer;
+                    }
+                    Err(_) => {
+                        finished = true;
+                        break;
+                    }
+                }
+            }
+            if !batch.is_empty() {
+                let outs: Vec<ChunkOut> = pool.install(|| {
+                    batch
+                        .par_iter()
+                        .map_init(
+                            || Worker {
+                                feat: Featurizer::new(&cfg).expect("validated above"),
+                                scratch: ParseScratch::default(),
+                            },
+                            |w, c| process(c, spec, w, split_seed, fraction),
+                        )
+                        .collect()
+                });
+                if wtx.send(WriteMsg::Rows(outs)).is_err() {
+                    break;
+                }
+            }
+            if let Some((i, fp)) = pending_done.take() {
+                if wtx.send(WriteMsg::Done(i, fp)).is_err() {
+                    break;
+                }
+            }
+            if let Some(b) = &bar {
+                b.set_position(read_bytes.load(Ordering::Relaxed));
+                b.set_message(format!(
+                    "{} rows",
+                    util::thousands(rows_done.load(Ordering::Relaxed))
+                ));
+            }
+            if finished {
+                break;
+            }
+        }
+        drop(wtx);
+        drop(rrx);
+        let w = writer
+            .join()
+            .map_err(|_| Error::Invalid("internal: writer thread panicked".into()))?;
+        match failure {
+            Some(e) => Err(e),
+            None => w,
+        }
+    });
+    if let Some(b) = &bar {
+        b.finish_and_clear();
+    }
+    let sink = result?;
+    let (_m, mut summary) = sink.finish(&opts.spec, opts.max_bad_fraction, replaced)?;
+    summary.input_bytes = read_bytes.load(Ordering::Relaxed);
+    summary.seconds = start.elapsed().as_secs_f64();
+    Ok(summary)
+}
