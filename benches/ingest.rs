@@ -1,1 +1,103 @@
-fn main() {}
+//! Criterion benchmarks of the ingest kernels: tokenizing + hashing a row, and
+//! parsing + hashing a whole TSV chunk as an ingest worker does.
+//!
+//! Input: `fixtures/inbox.tsv` (committed, invented) repeated to about 4 MiB, and
+//! a generated stream of short messages from `tamis::synth`.
+//! Run: `cargo bench --bench ingest`.
+
+use criterion::{criterion_group, criterion_main, Criterion, Throughput};
+use tamis::features::{FeatureConfig, Featurizer, HASH_SCHEME};
+use tamis::input::{parse_chunk, Chunk, InputSpec, LabelMode, ParseScratch};
+use tamis::synth::{Synth, SynthConfig};
+
+fn config() -> FeatureConfig {
+    FeatureConfig {
+        scheme: HASH_SCHEME.into(),
+        hash_seed: 1,
+        log2_buckets: 20,
+        ngrams: 2,
+        char_ngrams: None,
+        raw_counts: false,
+        text_fields: vec!["text".into()],
+        numeric_fields: vec![],
+    }
+}
+
+fn corpus() -> Vec<(&'static str, Vec<u8>)> {
+    let mut out = Vec::new();
+    let fixture = std::fs::read(concat!(env!("CARGO_MANIFEST_DIR"), "/fixtures/inbox.tsv"));
+    if let Ok(f) = fixture {
+        let mut data = Vec::new();
+        while data.len() < 4 << 20 && !f.is_empty() {
+            data.extend_from_slice(&f);
+        }
+        out.push(("fixture", data));
+    }
+    let mut data = Vec::new();
+    Synth::new(SynthConfig::default())
+        .write_bytes(4 << 20, &mut data)
+        .expect("in memory");
+    out.push(("synth", data));
+    out
+}
+
+fn bench(c: &mut Criterion) {
+    let spec = InputSpec::tsv(1 << 20);
+    for (name, data) in corpus() {
+        let mut g = c.benchmark_group(format!("ingest/{name}"));
+        g.throughput(Throughput::Bytes(data.len() as u64));
+        g.sample_size(20);
+        let texts: Vec<&[u8]> = data
+            .split(|&b| b == b'\n')
+            .filter_map(|l| l.iter().position(|&b| b == b'\t').map(|t| &l[t + 1..]))
+            .collect();
+        g.bench_function("tokenize_hash_rows", |b| {
+            let mut f = Featurizer::new(&config()).unwrap();
+            let (mut idx, mut val) = (Vec::new(), Vec::new());
+            b.iter(|| {
+                idx.clear();
+                val.clear();
+                for t in &texts {
+                    f.begin_row();
+                    f.add_text(0, t);
+                    f.finish_row(&mut idx, &mut val);
+                }
+                idx.len()
+            })
+        });
+        let chunk = Chunk {
+            input: 0,
+            seq: 0,
+            first_line: 1,
+            data: data.clone(),
+            skipped: None,
+            columns: None,
+        };
+        g.bench_function("parse_tokenize_hash_chunk", |b| {
+            let mut f = Featurizer::new(&config()).unwrap();
+            let mut scratch = ParseScratch::default();
+            let (mut idx, mut val) = (Vec::new(), Vec::new());
+            b.iter(|| {
+                idx.clear();
+                val.clear();
+                parse_chunk(
+                    &chunk,
+                    &spec,
+                    LabelMode::Required,
+                    &mut scratch,
+                    |r| {
+                        f.begin_row();
+                        f.add_text(0, r.texts[0]);
+                        f.finish_row(&mut idx, &mut val);
+                    },
+                    |_| {},
+                );
+                idx.len()
+            })
+        });
+        g.finish();
+    }
+}
+
+criterion_group!(benches, bench);
+criterion_main!(benches);

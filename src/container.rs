@@ -501,12 +501,17 @@ pub fn write_atomic(dest: &Path, bytes: &[u8]) -> Result<()> {
     f.commit()
 }
 
-/// A stream of bytes that counts and checksums what it writes.
+/// A stream of bytes that counts and checksums what it writes. Small writes are
+/// gathered in a buffer so the checksum and the system call see large blocks.
 pub struct SectionSink<W: Write> {
     out: W,
     hash: Xxh3,
     len: u64,
+    buf: Vec<u8>,
 }
+
+/// Buffer size of a [`SectionSink`].
+const SINK_BUF: usize = 1 << 18;
 
 impl<W: Write> SectionSink<W> {
     /// Wrap a writer.
@@ -515,14 +520,32 @@ impl<W: Write> SectionSink<W> {
             out,
             hash: Xxh3::new(),
             len: 0,
+            buf: Vec::with_capacity(SINK_BUF),
         }
     }
 
+    fn drain(&mut self) -> io::Result<()> {
+        if !self.buf.is_empty() {
+            self.hash.update(&self.buf);
+            self.out.write_all(&self.buf)?;
+            self.buf.clear();
+        }
+        Ok(())
+    }
+
     /// Append bytes.
+    #[inline]
     pub fn write(&mut self, bytes: &[u8]) -> io::Result<()> {
-        self.hash.update(bytes);
         self.len += bytes.len() as u64;
-        self.out.write_all(bytes)
+        if self.buf.len() + bytes.len() > SINK_BUF {
+            self.drain()?;
+            if bytes.len() >= SINK_BUF {
+                self.hash.update(bytes);
+                return self.out.write_all(bytes);
+            }
+        }
+        self.buf.extend_from_slice(bytes);
+        Ok(())
     }
 
     /// Bytes written so far.
@@ -535,14 +558,11 @@ impl<W: Write> SectionSink<W> {
         self.len == 0
     }
 
-    /// The checksum of everything written.
-    pub fn checksum(&self) -> u64 {
-        self.hash.digest()
-    }
-
-    /// The underlying writer.
-    pub fn into_inner(self) -> W {
-        self.out
+    /// Flush and return the writer, the byte count and the checksum.
+    pub fn finish(mut self) -> io::Result<(W, u64, u64)> {
+        self.drain()?;
+        self.out.flush()?;
+        Ok((self.out, self.len, self.hash.digest()))
     }
 }
 

@@ -85,3 +85,69 @@ impl DocFreq {
         )
     }
 }
+
+/// Counts document frequencies on one thread with a small cache footprint:
+/// one byte per bucket, carried into a `u32` total every 256 rows.
+pub struct DocCounter {
+    small: Vec<u8>,
+    big: Vec<u32>,
+}
+
+impl DocCounter {
+    /// A counter for `buckets` buckets.
+    pub fn new(buckets: usize) -> Self {
+        DocCounter {
+            small: vec![0; buckets],
+            big: vec![0; buckets],
+        }
+    }
+
+    /// Count one row in which bucket `i` is nonzero.
+    #[inline]
+    pub fn add(&mut self, i: usize) {
+        let c = &mut self.small[i];
+        if *c == u8::MAX {
+            self.big[i] = self.big[i].saturating_add(256);
+            *c = 0;
+        } else {
+            *c += 1;
+        }
+    }
+
+    /// Add these counts into `total` (saturating; the result does not depend on
+    /// the order in which counters are added).
+    pub fn add_into(&self, total: &mut [u32]) {
+        for ((t, &b), &s) in total.iter_mut().zip(&self.big).zip(&self.small) {
+            *t = t.saturating_add(b.saturating_add(s as u32));
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn counter_carries_exactly() {
+        let mut c = DocCounter::new(4);
+        for _ in 0..1000 {
+            c.add(1);
+        }
+        c.add(3);
+        let mut t = vec![0u32; 4];
+        c.add_into(&mut t);
+        c.add_into(&mut t);
+        assert_eq!(t, [0, 2000, 0, 2]);
+    }
+
+    #[test]
+    fn write_open_round_trip() {
+        let dir = tempfile::tempdir().unwrap();
+        let p = dir.path().join("d.tmd");
+        let counts: Vec<u32> = (0..1024).map(|i| i * 3).collect();
+        let sum = write(&p, 10, 77, 2, &counts).unwrap();
+        let d = DocFreq::open(&p, true).unwrap();
+        assert_eq!((d.log2_buckets(), d.rows(), d.checksum()), (10, 77, sum));
+        assert_eq!(d.counts().unwrap(), &counts[..]);
+    }
+}

@@ -28,7 +28,7 @@ use std::time::Instant;
 use rayon::prelude::*;
 use xxhash_rust::xxh3::xxh3_64_with_seed;
 
-use super::docfreq;
+use super::docfreq::{self, DocCounter};
 use super::manifest::{
     Batch, DocFreqEntry, InputEntry, LabelEntry, Manifest, ScatterRule, ShardEntry, Split,
     SplitRule, FORMAT_NAME, MANIFEST_FILE, VERSION,
@@ -39,7 +39,7 @@ use crate::input::{
     self, parse_chunk, BadLine, BadReason, Chunk, ChunkReader, Fingerprint, InputSpec, LabelMode,
     ParseScratch, Source,
 };
-use crate::shard::ShardWriter;
+use crate::shard::{ShardWriter, DEFAULT_NNZ_CAPACITY};
 use crate::util::{self, Lock};
 
 /// Default seed of hashing, split and scatter.
@@ -51,7 +51,7 @@ pub const DEFAULT_NGRAMS: u32 = 2;
 /// Default validation fraction.
 pub const DEFAULT_VALIDATION: f64 = 0.1;
 /// Default rows per shard.
-pub const DEFAULT_SHARD_ROWS: u64 = 1 << 18;
+pub const DEFAULT_SHARD_ROWS: u64 = 1 << 20;
 /// Default number of open training shard writers.
 pub const DEFAULT_SCATTER: u32 = 8;
 /// Reported examples per bad-line reason.
@@ -377,8 +377,10 @@ fn prepare(opts: &IngestOptions, log: &Log) -> Result<(Lock, Manifest, Option<Ma
 #[derive(Default)]
 struct ChunkOut {
     input: usize,
-    labels: String,
-    label_ends: Vec<u32>,
+    /// Distinct labels of the chunk, in order of first appearance.
+    label_names: Vec<String>,
+    /// Per row: index into `label_names`.
+    labels: Vec<u32>,
     validation: Vec<bool>,
     row_ends: Vec<u32>,
     indices: Vec<u32>,
@@ -391,20 +393,30 @@ struct ChunkOut {
 struct Worker {
     feat: Featurizer,
     scratch: ParseScratch,
+    local_labels: HashMap<String, u32>,
 }
 
+/// Parse and hash one chunk; count document frequencies of its training rows
+/// into `df`.
 fn process(
     chunk: &Chunk,
     spec: &InputSpec,
     w: &mut Worker,
+    df: &mut DocCounter,
     split_seed: u64,
     fraction: f64,
 ) -> ChunkOut {
+    let guess = chunk.data.len() / 4;
     let mut out = ChunkOut {
         input: chunk.input,
+        indices: Vec::with_capacity(guess),
+        values: Vec::with_capacity(guess),
+        row_ends: Vec::with_capacity(guess / 16),
         ..ChunkOut::default()
     };
     let feat = &mut w.feat;
+    let local = &mut w.local_labels;
+    local.clear();
     let mut empty = Vec::new();
     let counts = parse_chunk(
         chunk,
@@ -430,13 +442,28 @@ fn process(
                 });
                 return;
             }
+            let row_start = out.indices.len();
             feat.finish_row(&mut out.indices, &mut out.values);
             out.row_ends.push(out.indices.len() as u32);
-            out.labels.push_str(f.label.as_deref().unwrap_or(""));
-            out.label_ends.push(out.labels.len() as u32);
+            let name = f.label.as_deref().unwrap_or("");
+            let id = match local.get(name) {
+                Some(&id) => id,
+                None => {
+                    let id = out.label_names.len() as u32;
+                    out.label_names.push(name.to_string());
+                    local.insert(name.to_string(), id);
+                    id
+                }
+            };
+            out.labels.push(id);
             let h = xxh3_64_with_seed(f.raw, split_seed);
-            out.validation
-                .push(((h >> 11) as f64) * (1.0 / (1u64 << 53) as f64) < fraction);
+            let validation = ((h >> 11) as f64) * (1.0 / (1u64 << 53) as f64) < fraction;
+            out.validation.push(validation);
+            if !validation {
+                for &i in &out.indices[row_start..] {
+                    df.add(i as usize);
+                }
+            }
             if f.lossy || invalid > 0 {
                 out.lossy += 1;
             }
@@ -478,7 +505,6 @@ struct Sink {
     val: Option<ShardWriter>,
     new_shards: Vec<ShardEntry>,
     written: Written,
-    df: Vec<u32>,
     train_index: u64,
     train_rows: u64,
     val_rows: u64,
@@ -513,7 +539,6 @@ impl Sink {
         Sink {
             dir: dir.to_path_buf(),
             cols: m.features.buckets(),
-            df: vec![0u32; m.features.buckets() as usize],
             train_index: m.train_rows(),
             per_input: vec![(0, 0); names.len()],
             m,
@@ -540,7 +565,7 @@ impl Sink {
         }
     }
 
-    fn open_writer(&mut self, split: Split) -> Result<ShardWriter> {
+    fn open_writer(&mut self, split: Split, row_nnz: usize) -> Result<ShardWriter> {
         let prefix = match split {
             Split::Train => "train",
             Split::Validation => "valid",
@@ -549,11 +574,58 @@ impl Sink {
         self.m.next_shard += 1;
         let path = self.dir.join(&name);
         self.written.paths.push(path.clone());
-        ShardWriter::create(&path, self.cols)
+        ShardWriter::with_capacity(&path, self.cols, DEFAULT_NNZ_CAPACITY.max(row_nnz as u64))
+    }
+
+    /// Push a row to the writer in `slot`, opening, closing and reopening it as
+    /// needed (a shard closes after `shard_rows` rows or when full).
+    fn push_to(
+        &mut self,
+        slot: Option<usize>,
+        label: u32,
+        idx: &[u32],
+        val: &[f32],
+    ) -> Result<()> {
+        let split = if slot.is_some() {
+            Split::Train
+        } else {
+            Split::Validation
+        };
+        let full = match self.writer(slot) {
+            Some(w) => !w.fits(idx.len()),
+            None => false,
+        };
+        if full {
+            let w = self.writer(slot).take().expect("open");
+            self.close_writer(w, split)?;
+        }
+        if self.writer(slot).is_none() {
+            let w = self.open_writer(split, idx.len())?;
+            *self.writer(slot) = Some(w);
+        }
+        let w = self.writer(slot).as_mut().expect("opened");
+        w.push(label, idx, val)?;
+        if w.rows() >= self.m.scatter.shard_rows {
+            let w = self.writer(slot).take().expect("open");
+            self.close_writer(w, split)?;
+        }
+        Ok(())
+    }
+
+    fn writer(&mut self, slot: Option<usize>) -> &mut Option<ShardWriter> {
+        match slot {
+            Some(i) => &mut self.train[i],
+            None => &mut self.val,
+        }
     }
 
     fn close_writer(&mut self, w: ShardWriter, split: Split) -> Result<()> {
         let info = w.finish()?;
+        self.record(info, split);
+        Ok(())
+    }
+
+    fn record(&mut self, info: crate::shard::ShardInfo, split: Split) {
         self.new_shards.push(ShardEntry {
             file: info
                 .path
@@ -567,11 +639,11 @@ impl Sink {
             checksum: format!("{:016x}", info.checksum),
             batch: self.batch,
         });
-        Ok(())
     }
 
-    fn label_id(&mut self, name: &str, validation: bool) -> u32 {
-        let id = match self.label_ids.get(name) {
+    /// The class id of a label, adding it to the dictionary when new.
+    fn intern(&mut self, name: &str) -> u32 {
+        match self.label_ids.get(name) {
             Some(&id) => id,
             None => {
                 let id = self.m.labels.len() as u32;
@@ -583,60 +655,41 @@ impl Sink {
                 self.label_ids.insert(name.to_string(), id);
                 id
             }
-        };
-        let e = &mut self.m.labels[id as usize];
-        if validation {
-            e.validation_rows += 1;
-        } else {
-            e.train_rows += 1;
         }
-        id
     }
 
     fn push(&mut self, c: ChunkOut) -> Result<()> {
-        let shard_rows = self.m.scatter.shard_rows;
         let writers = self.m.scatter.writers as u64;
         let scatter_seed = self.m.scatter.seed;
-        let mask = self.cols - 1;
-        let (mut lstart, mut rstart) = (0usize, 0usize);
+        // Chunk-local label numbers → class ids, once per chunk.
+        let ids: Vec<u32> = c
+            .label_names
+            .iter()
+            .map(|n| self.intern(n))
+            .collect();
+        let mut rstart = 0usize;
         for r in 0..c.row_ends.len() {
-            let lend = c.label_ends[r] as usize;
             let rend = c.row_ends[r] as usize;
             let validation = c.validation[r];
-            let label = self.label_id(&c.labels[lstart..lend], validation);
+            let label = ids[c.labels[r] as usize];
+            let e = &mut self.m.labels[label as usize];
+            if validation {
+                e.validation_rows += 1;
+            } else {
+                e.train_rows += 1;
+            }
             let (idx, val) = (&c.indices[rstart..rend], &c.values[rstart..rend]);
             if validation {
-                if self.val.is_none() {
-                    self.val = Some(self.open_writer(Split::Validation)?);
-                }
-                let w = self.val.as_mut().expect("opened");
-                w.push(label, idx, val)?;
-                if w.rows() >= shard_rows {
-                    let w = self.val.take().expect("open");
-                    self.close_writer(w, Split::Validation)?;
-                }
+                self.push_to(None, label, idx, val)?;
                 self.val_rows += 1;
             } else {
                 let slot = (xxh3_64_with_seed(&self.train_index.to_le_bytes(), scatter_seed)
                     % writers) as usize;
                 self.train_index += 1;
-                if self.train[slot].is_none() {
-                    self.train[slot] = Some(self.open_writer(Split::Train)?);
-                }
-                let w = self.train[slot].as_mut().expect("opened");
-                w.push(label, idx, val)?;
-                if w.rows() >= shard_rows {
-                    let w = self.train[slot].take().expect("open");
-                    self.close_writer(w, Split::Train)?;
-                }
-                for &i in idx {
-                    let d = &mut self.df[(i as u64 & mask) as usize];
-                    *d = d.saturating_add(1);
-                }
+                self.push_to(Some(slot), label, idx, val)?;
                 self.train_rows += 1;
             }
             self.nnz += idx.len() as u64;
-            lstart = lend;
             rstart = rend;
         }
         let name = &self.names[c.input];
@@ -686,6 +739,7 @@ impl Sink {
         spec: &InputSpec,
         max_bad: f64,
         replaced: Option<Manifest>,
+        df: &[u32],
     ) -> Result<(Manifest, IngestSummary)> {
         let good = self.train_rows + self.val_rows;
         let bad: u64 = self.bad.iter().sum();
@@ -713,12 +767,31 @@ impl Sink {
                 )));
             }
         }
-        let writers: Vec<ShardWriter> = self.train.iter_mut().filter_map(Option::take).collect();
-        for w in writers {
-            self.close_writer(w, Split::Train)?;
-        }
-        if let Some(w) = self.val.take() {
-            self.close_writer(w, Split::Validation)?;
+        // The last open shards are finished together, each on a thread of its own
+        // (finishing means moving values down, copying side files and syncing).
+        let mut open: Vec<(ShardWriter, Split)> = self
+            .train
+            .iter_mut()
+            .filter_map(Option::take)
+            .map(|w| (w, Split::Train))
+            .collect();
+        open.extend(self.val.take().map(|w| (w, Split::Validation)));
+        let finished: Vec<Result<(crate::shard::ShardInfo, Split)>> = std::thread::scope(|s| {
+            let handles: Vec<_> = open
+                .into_iter()
+                .map(|(w, split)| s.spawn(move || w.finish().map(|i| (i, split))))
+                .collect();
+            handles
+                .into_iter()
+                .map(|h| {
+                    h.join()
+                        .unwrap_or_else(|_| Err(Error::Invalid("internal: shard writer panicked".into())))
+                })
+                .collect()
+        });
+        for f in finished {
+            let (info, split) = f?;
+            self.record(info, split);
         }
         let df_name = format!("docfreq-{:06}.tmd", self.m.next_shard);
         self.m.next_shard += 1;
@@ -729,7 +802,7 @@ impl Sink {
             self.m.features.log2_buckets,
             self.train_rows,
             self.batch,
-            &self.df,
+            df,
         )?;
         self.m.doc_freq.push(DocFreqEntry {
             file: df_name,
@@ -932,14 +1005,26 @@ pub fn ingest(opts: &IngestOptions, log: Log) -> Result<IngestSummary> {
     let sink = Sink::new(&opts.out, manifest, names, log.clone(), rows_done.clone());
     let spec = &opts.spec;
     let batch_len = 2 * threads;
+    // Document frequencies: one array per pool thread, summed at the end
+    // (saturating sums of counts do not depend on the order).
+    let buckets = cfg.buckets() as usize;
+    let dfs: Vec<std::sync::Mutex<DocCounter>> = (0..threads)
+        .map(|_| std::sync::Mutex::new(DocCounter::new(buckets)))
+        .collect();
 
     let result: Result<Sink> = std::thread::scope(|s| {
         let (rtx, rrx) = sync_channel::<ReadMsg>(batch_len + 2);
         let (wtx, wrx) = sync_channel::<WriteMsg>(2);
         let rb = read_bytes.clone();
         let inputs = &opts.inputs;
-        s.spawn(move || read_inputs(inputs, spec, rb, rtx));
-        let writer = s.spawn(move || write_rows(sink, wrx));
+        std::thread::Builder::new()
+            .name("tamis-read".into())
+            .spawn_scoped(s, move || read_inputs(inputs, spec, rb, rtx))
+            .map_err(|e| Error::Invalid(format!("cannot start a thread: {e}")))?;
+        let writer = std::thread::Builder::new()
+            .name("tamis-write".into())
+            .spawn_scoped(s, move || write_rows(sink, wrx))
+            .map_err(|e| Error::Invalid(format!("cannot start a thread: {e}")))?;
         let mut failure = None;
         let mut pending_done = None;
         'outer: loop {
@@ -970,8 +1055,13 @@ pub fn ingest(opts: &IngestOptions, log: Log) -> Result<IngestSummary> {
                             || Worker {
                                 feat: Featurizer::new(&cfg).expect("validated above"),
                                 scratch: ParseScratch::default(),
+                                local_labels: HashMap::new(),
                             },
-                            |w, c| process(c, spec, w, split_seed, fraction),
+                            |w, c| {
+                                let t = rayon::current_thread_index().unwrap_or(0) % dfs.len();
+                                let mut df = dfs[t].lock().expect("not poisoned");
+                                process(c, spec, w, &mut df, split_seed, fraction)
+                            },
                         )
                         .collect()
                 });
@@ -1009,7 +1099,11 @@ pub fn ingest(opts: &IngestOptions, log: Log) -> Result<IngestSummary> {
         b.finish_and_clear();
     }
     let sink = result?;
-    let (_m, mut summary) = sink.finish(&opts.spec, opts.max_bad_fraction, replaced)?;
+    let mut df = vec![0u32; buckets];
+    for counter in dfs {
+        counter.into_inner().expect("not poisoned").add_into(&mut df);
+    }
+    let (_m, mut summary) = sink.finish(&opts.spec, opts.max_bad_fraction, replaced, &df)?;
     summary.input_bytes = read_bytes.load(Ordering::Relaxed);
     summary.seconds = start.elapsed().as_secs_f64();
     Ok(summary)

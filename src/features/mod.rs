@@ -163,6 +163,12 @@ pub fn numeric_hash(hash_seed: u64, name: &str) -> u64 {
 /// Hash of a word n-gram from its tokens' unigram hashes (`n = hashes.len() ≥ 2`).
 #[inline]
 pub fn ngram_hash(field_seed: u64, hashes: &[u64]) -> u64 {
+    if let [a, b] = hashes {
+        let mut buf = [0u8; 16];
+        buf[..8].copy_from_slice(&a.to_le_bytes());
+        buf[8..].copy_from_slice(&b.to_le_bytes());
+        return xxh3_64_with_seed(&buf, field_seed ^ 2u64.wrapping_mul(PHI));
+    }
     let mut buf = [0u8; 8 * 5];
     for (i, h) in hashes.iter().enumerate() {
         buf[8 * i..8 * i + 8].copy_from_slice(&h.to_le_bytes());
@@ -241,16 +247,39 @@ pub fn tokenize(text: &[u8], buf: &mut Vec<u8>, mut emit: impl FnMut(&[u8])) -> 
         let c = text[i];
         if c < 0x80 {
             match ASCII[c as usize] {
-                1 => buf.push(c),
-                2 => buf.push(c + 32),
+                1 if buf.is_empty() => {
+                    // Fast path: a run of lowercase ASCII letters and digits is
+                    // hashed straight from the input, without a copy.
+                    let s = i;
+                    while i < n && text[i] < 0x80 && ASCII[text[i] as usize] == 1 {
+                        i += 1;
+                    }
+                    if i < n && (text[i] >= 0x80 || ASCII[text[i] as usize] == 2) {
+                        // The token goes on with other characters: slow path.
+                        buf.extend_from_slice(&text[s..i]);
+                    } else {
+                        for piece in text[s..i].chunks(MAX_TOKEN_BYTES) {
+                            emit(piece);
+                        }
+                        continue;
+                    }
+                }
+                1 => {
+                    buf.push(c);
+                    i += 1;
+                }
+                2 => {
+                    buf.push(c + 32);
+                    i += 1;
+                }
                 _ => {
                     if !buf.is_empty() {
                         emit(buf);
                         buf.clear();
                     }
+                    i += 1;
                 }
             }
-            i += 1;
         } else {
             let (ch, w) = decode(&text[i..]);
             i += w;
@@ -272,17 +301,14 @@ pub fn tokenize(text: &[u8], buf: &mut Vec<u8>, mut emit: impl FnMut(&[u8])) -> 
                 }
             }
         }
-        if buf.len() >= MAX_TOKEN_BYTES {
+        while buf.len() >= MAX_TOKEN_BYTES {
             // Cut pathological runs (base64 blobs, long hex) at a char boundary.
-            let mut cut = buf.len();
-            while cut > 0 && (buf[cut - 1] & 0xC0) == 0x80 {
-                cut -= 1;
-            }
-            if cut > 0 && buf[cut - 1] >= 0xC0 {
+            let mut cut = MAX_TOKEN_BYTES;
+            while cut > 0 && cut < buf.len() && (buf[cut] & 0xC0) == 0x80 {
                 cut -= 1;
             }
             if cut == 0 {
-                cut = buf.len();
+                cut = MAX_TOKEN_BYTES;
             }
             emit(&buf[..cut]);
             buf.drain(..cut);
@@ -315,8 +341,16 @@ pub struct Featurizer {
     padded: Vec<u8>,
     bounds: Vec<usize>,
     recent: [u64; 5],
-    text: Vec<(u32, f32)>,
+    /// One entry per token occurrence: `bucket << 1 | (sign is negative)`.
+    text: Vec<u32>,
     numeric: Vec<(u32, f32)>,
+    merged: Vec<(u32, f32)>,
+}
+
+/// Pack a hash into a text entry: bucket in the high bits, the sign in bit 0.
+#[inline]
+fn key(h: u64, mask: u64) -> u32 {
+    (((h & mask) as u32) << 1) | (h >> 63) as u32
 }
 
 impl Featurizer {
@@ -342,6 +376,7 @@ impl Featurizer {
             recent: [0; 5],
             text: Vec::with_capacity(256),
             numeric: Vec::with_capacity(8),
+            merged: Vec::with_capacity(256),
         })
     }
 
@@ -373,18 +408,18 @@ impl Featurizer {
         } = self;
         let invalid = tokenize(text, token, |tok| {
             let h = xxh3_64_with_seed(tok, seed);
-            out.push(bucket_sign(h, mask));
-            // Ring of the last n unigram hashes, newest at index count % n.
+            out.push(key(h, mask));
             if n > 1 {
-                recent[count % n] = h;
-                let have = (count + 1).min(n);
-                let mut seq = [0u64; 5];
-                for order in 2..=have {
-                    for (j, slot) in seq[..order].iter_mut().enumerate() {
-                        // Oldest first: positions count-order+1 ..= count.
-                        *slot = recent[(count + 1 + j + n - order) % n];
-                    }
-                    out.push(bucket_sign(ngram_hash(seed, &seq[..order]), mask));
+                // `recent` holds the previous min(count, n-1) unigram hashes,
+                // oldest first, followed by this one.
+                let have = count.min(n - 1);
+                recent[have] = h;
+                for order in 2..=have + 1 {
+                    let gram = &recent[have + 1 - order..=have];
+                    out.push(key(ngram_hash(seed, gram), mask));
+                }
+                if have == n - 1 {
+                    recent.copy_within(1..n, 0);
                 }
             }
             if let Some(cn) = chars {
@@ -413,30 +448,54 @@ impl Featurizer {
     /// and values to `indices` and `values`. Returns the number of entries added.
     pub fn finish_row(&mut self, indices: &mut Vec<u32>, values: &mut Vec<f32>) -> usize {
         let start = indices.len();
-        merge(&mut self.text);
-        if !self.cfg.raw_counts {
-            let mut norm = 0.0f64;
-            for e in self.text.iter_mut() {
-                let v = e.1.abs().ln_1p().copysign(e.1);
-                e.1 = v;
-                norm += (v as f64) * (v as f64);
+        self.text.sort_unstable();
+        let raw = self.cfg.raw_counts;
+        let mut norm = 0.0f32;
+        let t = &self.text;
+        // Write through plain slices with a local length: pushing through
+        // `&mut Vec` reloads and stores the length for every entry.
+        indices.resize(start + t.len(), 0);
+        values.resize(start + t.len(), 0.0);
+        let (out_i, out_v) = (&mut indices[start..], &mut values[start..]);
+        let mut k = 0;
+        let mut i = 0;
+        while i < t.len() {
+            let bucket = t[i] >> 1;
+            let mut count = 1 - 2 * (t[i] & 1) as i32;
+            i += 1;
+            while i < t.len() && t[i] >> 1 == bucket {
+                count += 1 - 2 * (t[i] & 1) as i32;
+                i += 1;
             }
-            if norm > 0.0 {
-                let inv = (1.0 / norm.sqrt()) as f32;
-                for e in self.text.iter_mut() {
-                    e.1 *= inv;
-                }
+            let v = match count {
+                0 => continue,
+                _ if raw => count as f32,
+                1 => std::f32::consts::LN_2,
+                -1 => -std::f32::consts::LN_2,
+                _ => (count.unsigned_abs() as f32).ln_1p().copysign(count as f32),
+            };
+            norm += v * v;
+            out_i[k] = bucket;
+            out_v[k] = v;
+            k += 1;
+        }
+        indices.truncate(start + k);
+        values.truncate(start + k);
+        if !raw && norm > 0.0 {
+            let inv = 1.0 / norm.sqrt();
+            for v in &mut values[start..] {
+                *v *= inv;
             }
         }
-        if self.numeric.is_empty() {
-            for &(b, v) in &self.text {
-                indices.push(b);
-                values.push(v);
-            }
-        } else {
-            self.text.extend_from_slice(&self.numeric);
-            merge(&mut self.text);
-            for &(b, v) in &self.text {
+        if !self.numeric.is_empty() {
+            let out = &mut self.merged;
+            out.clear();
+            out.extend(indices[start..].iter().copied().zip(values[start..].iter().copied()));
+            out.extend_from_slice(&self.numeric);
+            merge(out);
+            indices.truncate(start);
+            values.truncate(start);
+            for &(b, v) in out.iter() {
                 indices.push(b);
                 values.push(v);
             }
@@ -447,11 +506,7 @@ impl Featurizer {
 
 /// Sort by bucket, sum duplicates, drop zeros.
 fn merge(v: &mut Vec<(u32, f32)>) {
-    if v.len() < 2 {
-        v.retain(|e| e.1 != 0.0);
-        return;
-    }
-    v.sort_unstable_by_key(|e| e.0);
+    v.sort_by_key(|e| e.0);
     let mut w = 0;
     for r in 0..v.len() {
         if w > 0 && v[w - 1].0 == v[r].0 {
@@ -473,7 +528,7 @@ fn char_grams(
     mask: u64,
     padded: &mut Vec<u8>,
     bounds: &mut Vec<usize>,
-    out: &mut Vec<(u32, f32)>,
+    out: &mut Vec<u32>,
 ) {
     padded.clear();
     padded.push(b'<');
@@ -493,7 +548,7 @@ fn char_grams(
         }
         for s in 0..=chars - n {
             let gram = &padded[bounds[s]..bounds[s + n]];
-            out.push(bucket_sign(char_ngram_hash(seed, gram, n), mask));
+            out.push(key(char_ngram_hash(seed, gram, n), mask));
         }
     }
 }
@@ -603,6 +658,7 @@ mod tests {
             .map(|t| xxh3_64_with_seed(t.as_bytes(), s))
             .collect();
         let mut want: Vec<(u32, f32)> = u.iter().map(|&h| bucket_sign(h, f.mask)).collect();
+        // Order of equal buckets does not matter for the sums.
         for w in u.windows(2).chain(u.windows(3)) {
             want.push(bucket_sign(ngram_hash(s, w), f.mask));
         }

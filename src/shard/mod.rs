@@ -18,12 +18,13 @@
 //! is finished, so a writer holds only small buffers however large the shard grows.
 
 use std::fs::{File, OpenOptions};
-use std::io::BufWriter;
 use std::path::{Path, PathBuf};
 
+use std::io::Read;
+
 use crate::container::{
-    self, cast_section, AlignedBytes, Container, ContainerWriter, FileBytes, Kind, SectionSink,
-    StreamSection,
+    self, cast_section, AlignedBytes, AtomicFile, Container, FileBytes, Header, Kind,
+    SectionEntry, SectionSink,
 };
 use crate::error::{Error, IoContext, Result};
 
@@ -307,7 +308,7 @@ fn header_checksum(bytes: &[u8], sections: usize) -> u64 {
 /// A side file holding one section while a shard is being written.
 struct Side {
     path: PathBuf,
-    sink: Option<SectionSink<BufWriter<File>>>,
+    sink: Option<SectionSink<File>>,
 }
 
 impl Side {
@@ -320,7 +321,7 @@ impl Side {
             .open(&path)
             .at(&path)?;
         Ok(Side {
-            sink: Some(SectionSink::new(BufWriter::with_capacity(1 << 16, f))),
+            sink: Some(SectionSink::new(f)),
             path,
         })
     }
@@ -333,16 +334,31 @@ impl Side {
             .at(&self.path)
     }
 
-    /// Flush and copy this side file into the shard as section `id`.
-    fn copy_into(mut self, id: u32, w: &mut ContainerWriter) -> Result<()> {
+    /// A placeholder that owns no file.
+    fn empty() -> Side {
+        Side {
+            path: PathBuf::new(),
+            sink: None,
+        }
+    }
+
+    /// Flush and copy this side file to the current position of `out`; returns
+    /// its length and checksum.
+    fn copy_to(mut self, mut out: &File) -> Result<(u64, u64)> {
+        use std::io::{Seek, SeekFrom};
         let sink = self.sink.take().expect("open until copied");
-        let (len, sum) = (sink.len(), sink.checksum());
-        let mut f = sink
-            .into_inner()
-            .into_inner()
-            .map_err(|e| e.into_error())
-            .at(&self.path)?;
-        w.section_from_file(id, &mut f, &self.path, len, sum)
+        let (mut f, len, sum) = sink.finish().at(&self.path)?;
+        f.seek(SeekFrom::Start(0)).at(&self.path)?;
+        let copied = std::io::copy(&mut (&f).take(len), &mut out).at(&self.path)?;
+        if copied != len {
+            return Err(Error::Size {
+                path: self.path.clone(),
+                what: "temporary section file".into(),
+                expected: len,
+                got: copied,
+            });
+        }
+        Ok((len, sum))
     }
 }
 
@@ -350,21 +366,10 @@ impl Drop for Side {
     fn drop(&mut self) {
         // Side files never outlive their shard writer, whether it finished or not.
         self.sink = None;
-        let _ = std::fs::remove_file(&self.path);
+        if !self.path.as_os_str().is_empty() {
+            let _ = std::fs::remove_file(&self.path);
+        }
     }
-}
-
-/// Writes one shard, row by row, with bounded memory.
-pub struct ShardWriter {
-    dest: PathBuf,
-    w: ContainerWriter,
-    indices: StreamSection,
-    values: Side,
-    indptr: Side,
-    labels: Side,
-    rows: u64,
-    nnz: u64,
-    cols: u64,
 }
 
 /// What a finished shard looks like, for the manifest.
@@ -382,11 +387,92 @@ pub struct ShardInfo {
     pub bytes: u64,
 }
 
+/// Entries gathered in memory before a positioned write.
+const PENDING: usize = 1 << 16;
+
+/// Default capacity of a shard in nonzeros (32 MiB of indices, 32 MiB of values).
+pub const DEFAULT_NNZ_CAPACITY: u64 = 1 << 23;
+
+/// A section written in place at a fixed offset of the shard file, in blocks,
+/// checksummed as it goes.
+struct Region<T: bytemuck::Pod> {
+    offset: u64,
+    written: u64,
+    pending: Vec<T>,
+    hash: xxhash_rust::xxh3::Xxh3,
+}
+
+impl<T: bytemuck::Pod> Region<T> {
+    fn new(offset: u64) -> Self {
+        Region {
+            offset,
+            written: 0,
+            pending: Vec::with_capacity(PENDING),
+            hash: xxhash_rust::xxh3::Xxh3::new(),
+        }
+    }
+
+    fn flush(&mut self, f: &File, path: &Path) -> Result<()> {
+        use std::os::unix::fs::FileExt;
+        if self.pending.is_empty() {
+            return Ok(());
+        }
+        let bytes: &[u8] = bytemuck::cast_slice(&self.pending);
+        self.hash.update(bytes);
+        f.write_all_at(bytes, self.offset + self.written).at(path)?;
+        self.written += bytes.len() as u64;
+        self.pending.clear();
+        Ok(())
+    }
+
+    #[inline]
+    fn extend(&mut self, items: &[T], f: &File, path: &Path) -> Result<()> {
+        if self.pending.len() + items.len() > PENDING {
+            self.flush(f, path)?;
+        }
+        self.pending.extend_from_slice(items);
+        Ok(())
+    }
+}
+
+/// Writes one shard, row by row, with bounded memory.
+///
+/// The shard is created for a capacity of `nnz_capacity` nonzeros: the
+/// `indices` section starts after the header and `values` at a fixed offset
+/// after room for that many indices, so both are written in place as rows arrive
+/// (no copy). Row offsets and labels, 12 bytes a row, go to side files that are
+/// appended when the shard is finished. A shard that ends well short of its
+/// capacity has its values moved down so the file holds no large gap.
+pub struct ShardWriter {
+    file: AtomicFile,
+    handle: File,
+    indices: Region<u32>,
+    values: Region<f32>,
+    indptr: Side,
+    labels: Side,
+    rows: u64,
+    nnz: u64,
+    capacity: u64,
+    cols: u64,
+}
+
+/// Sections of a shard.
+const SECTIONS: usize = 4;
+
 impl ShardWriter {
-    /// Start a shard at `dest` with `cols` columns.
+    /// Start a shard at `dest` with `cols` columns and room for
+    /// [`DEFAULT_NNZ_CAPACITY`] nonzeros.
     pub fn create(dest: &Path, cols: u64) -> Result<Self> {
-        let mut w = ContainerWriter::create(dest, Kind::Shard, VERSION, 4)?;
-        let indices = w.begin_stream()?;
+        Self::with_capacity(dest, cols, DEFAULT_NNZ_CAPACITY)
+    }
+
+    /// Start a shard with room for `nnz_capacity` nonzeros.
+    pub fn with_capacity(dest: &Path, cols: u64, nnz_capacity: u64) -> Result<Self> {
+        let mut file = AtomicFile::create(dest)?;
+        let tmp = file.tmp_path().to_path_buf();
+        let handle = file.file().try_clone().at(&tmp)?;
+        let idx_at = container::header_len(SECTIONS);
+        let val_at = container::align_up(idx_at + 4 * nnz_capacity);
         let side = |ext: &str| {
             let mut name = dest.as_os_str().to_owned();
             name.push(format!(".{ext}.tmp-{}", std::process::id()));
@@ -395,26 +481,39 @@ impl ShardWriter {
         let mut indptr = side("indptr")?;
         indptr.write(&0u64.to_le_bytes())?;
         Ok(ShardWriter {
-            dest: dest.to_path_buf(),
-            w,
-            indices,
-            values: side("values")?,
+            file,
+            handle,
+            indices: Region::new(idx_at),
+            values: Region::new(val_at),
             indptr,
             labels: side("labels")?,
             rows: 0,
             nnz: 0,
+            capacity: nnz_capacity,
             cols,
         })
     }
 
+    /// Whether a row of `nnz` nonzeros still fits.
+    pub fn fits(&self, nnz: usize) -> bool {
+        self.nnz + nnz as u64 <= self.capacity
+    }
+
     /// Append one row. `indices` must be strictly increasing and below the column
-    /// count (the featurizer guarantees this).
+    /// count (the featurizer guarantees this), and the row must fit.
     pub fn push(&mut self, label: u32, indices: &[u32], values: &[f32]) -> Result<()> {
         debug_assert_eq!(indices.len(), values.len());
         debug_assert!(indices.windows(2).all(|w| w[0] < w[1]));
-        self.w
-            .stream(&mut self.indices, bytemuck::cast_slice(indices))?;
-        self.values.write(bytemuck::cast_slice(values))?;
+        if !self.fits(indices.len()) {
+            return Err(Error::Invalid(format!(
+                "internal: row of {} nonzeros does not fit in shard {}",
+                indices.len(),
+                self.file.dest().display()
+            )));
+        }
+        let path = self.file.tmp_path();
+        self.indices.extend(indices, &self.handle, path)?;
+        self.values.extend(values, &self.handle, path)?;
         self.nnz += indices.len() as u64;
         self.rows += 1;
         self.indptr.write(&self.nnz.to_le_bytes())?;
@@ -427,34 +526,100 @@ impl ShardWriter {
         self.rows
     }
 
+    /// Nonzeros written so far.
+    pub fn nnz(&self) -> u64 {
+        self.nnz
+    }
+
     /// Assemble the sections, write the header and rename the shard into place.
-    /// The file is synced; the caller syncs the folder.
-    pub fn finish(self) -> Result<ShardInfo> {
-        let ShardWriter {
-            dest,
-            mut w,
-            indices,
-            values,
-            indptr,
-            labels,
-            rows,
-            nnz,
-            cols,
-        } = self;
-        w.end_stream(SEC_INDICES, indices)?;
-        values.copy_into(SEC_VALUES, &mut w)?;
-        indptr.copy_into(SEC_INDPTR, &mut w)?;
-        labels.copy_into(SEC_LABELS, &mut w)?;
-        w.set_params([rows, nnz, cols, 0]);
-        w.finish()?;
-        let meta = std::fs::metadata(&dest).at(&dest)?;
+    /// The file and its folder are synced.
+    pub fn finish(mut self) -> Result<ShardInfo> {
+        use std::io::{Seek, SeekFrom, Write};
+        use std::os::unix::fs::FileExt;
+        let tmp = self.file.tmp_path().to_path_buf();
+        self.indices.flush(&self.handle, &tmp)?;
+        self.values.flush(&self.handle, &tmp)?;
+        let idx_len = 4 * self.nnz;
+        let idx_end = self.indices.offset + idx_len;
+        let mut val_at = self.values.offset;
+        let val_len = 4 * self.nnz;
+        // Move the values down when the shard ended well short of its capacity.
+        let packed_at = container::align_up(idx_end);
+        if val_at - packed_at > 1 << 20 {
+            let mut buf = vec![0u8; 1 << 20];
+            let mut done = 0;
+            while done < val_len {
+                let n = (val_len - done).min(buf.len() as u64) as usize;
+                self.handle
+                    .read_exact_at(&mut buf[..n], val_at + done)
+                    .at(&tmp)?;
+                self.handle
+                    .write_all_at(&buf[..n], packed_at + done)
+                    .at(&tmp)?;
+                done += n as u64;
+            }
+            // Zero what lies between the moved values and their old end, so the
+            // padding check of `verify` holds.
+            let stale_from = packed_at + val_len;
+            let stale_to = val_at + val_len;
+            if stale_to > stale_from {
+                self.handle.set_len(stale_from).at(&tmp)?;
+            }
+            val_at = packed_at;
+        }
+        let mut end = val_at + val_len;
+        let mut entries = vec![
+            SectionEntry {
+                id: SEC_INDICES,
+                offset: self.indices.offset,
+                len: idx_len,
+                checksum: self.indices.hash.digest(),
+            },
+            SectionEntry {
+                id: SEC_VALUES,
+                offset: val_at,
+                len: val_len,
+                checksum: self.values.hash.digest(),
+            },
+        ];
+        self.handle.set_len(end).at(&tmp)?;
+        let mut out = &self.handle;
+        for (id, side) in [
+            (SEC_INDPTR, std::mem::replace(&mut self.indptr, Side::empty())),
+            (SEC_LABELS, std::mem::replace(&mut self.labels, Side::empty())),
+        ] {
+            let at = container::align_up(end);
+            self.handle.set_len(at).at(&tmp)?;
+            out.seek(SeekFrom::Start(at)).at(&tmp)?;
+            let (len, sum) = side.copy_to(out)?;
+            entries.push(SectionEntry {
+                id,
+                offset: at,
+                len,
+                checksum: sum,
+            });
+            end = at + len;
+        }
+        let header = Header {
+            kind: Kind::Shard,
+            version: VERSION,
+            file_len: end,
+            params: [self.rows, self.nnz, self.cols, 0],
+            sections: entries,
+        };
+        out.flush().at(&tmp)?;
+        self.handle.write_all_at(&header.to_bytes(), 0).at(&tmp)?;
+        let dest = self.file.dest().to_path_buf();
+        let (rows, nnz) = (self.rows, self.nnz);
+        drop(self.handle);
+        self.file.commit()?;
         let shard = Shard::open(&dest)?;
         Ok(ShardInfo {
             checksum: shard.header_checksum(),
             path: dest,
             rows,
             nnz,
-            bytes: meta.len(),
+            bytes: end,
         })
     }
 }
@@ -498,6 +663,28 @@ mod tests {
         // No side files are left behind.
         assert_eq!(std::fs::read_dir(dir.path()).unwrap().count(), 1);
         assert!(matches!(s.verify(Some(2)), Err(Error::Corrupt { .. })));
+    }
+
+    #[test]
+    fn capacity_full_partial_and_refused() {
+        let dir = tempfile::tempdir().unwrap();
+        for cap in [4u64, 6, 1 << 20] {
+            let path = dir.path().join(format!("c{cap}.tms"));
+            let mut w = ShardWriter::with_capacity(&path, 64, cap).unwrap();
+            w.push(1, &[1, 2], &[0.5, 0.25]).unwrap();
+            w.push(0, &[3, 63], &[1.0, -1.0]).unwrap();
+            assert_eq!(w.fits(3), cap >= 7);
+            if cap == 4 {
+                assert!(w.push(0, &[5], &[1.0]).is_err());
+            }
+            let info = w.finish().unwrap();
+            let s = Shard::open(&path).unwrap();
+            s.verify(Some(2)).unwrap();
+            assert_eq!(s.row(1).indices, &[3, 63]);
+            assert_eq!(s.row(1).values, &[1.0, -1.0]);
+            // Values were moved down when the gap was large: the file stays small.
+            assert!(info.bytes < 4096, "{cap}: {} bytes", info.bytes);
+        }
     }
 
     #[test]
