@@ -8,6 +8,9 @@
 //!   → features  tokens, n-grams, signed hashing          (features)
 //!   → shard     write-once CSR files, memory-mapped      (shard, container)
 //!   → dataset   manifest, document frequencies, ingest   (dataset)
+//!   → solver    averaged Pegasos over row views          (solver)
+//!   → training  epochs over shards, validation, logging  (train)
+//!   → model     settings + labels + weights, scoring     (model)
 //! ```
 //!
 //! # Example
@@ -42,8 +45,11 @@ pub mod dataset;
 pub mod error;
 pub mod features;
 pub mod input;
+pub mod model;
 pub mod shard;
+pub mod solver;
 pub mod synth;
+pub mod train;
 pub mod util;
 
 pub use error::{Error, Result};

@@ -35,6 +35,20 @@ pub fn bytes(n: u64) -> String {
     }
 }
 
+/// Format a rate with an SI suffix (`1234567.0` → `1.23 M`).
+pub fn si(x: f64) -> String {
+    let (v, u) = if x >= 1e9 {
+        (x / 1e9, " G")
+    } else if x >= 1e6 {
+        (x / 1e6, " M")
+    } else if x >= 1e3 {
+        (x / 1e3, " k")
+    } else {
+        (x, "")
+    };
+    format!("{v:.2}{u}")
+}
+
 /// Peak and current anonymous resident memory of this process in bytes, read
 /// from `/proc/self/status` (`VmHWM` is for all resident pages; `RssAnon` counts
 /// only memory that is not file-backed, so mapped shards do not count).

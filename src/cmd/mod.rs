@@ -3,6 +3,7 @@
 pub mod demo;
 pub mod ingest;
 pub mod stats;
+pub mod train;
 pub mod verify;
 
 use std::process::ExitCode;
@@ -26,6 +27,8 @@ enum Command {
     /// Turn labelled raw text (TSV, CSV, JSON Lines; plain, gzip or zstd) into a
     /// dataset of hashed sparse shards.
     Ingest(Box<ingest::Args>),
+    /// Train a max-margin (or logistic) linear classifier on a dataset.
+    Train(Box<train::Args>),
     /// Summarise a dataset: rows, labels, nonzeros, bucket fill, shards.
     Stats(stats::Args),
     /// Recompute every checksum of a dataset or a tamis file and report damage.
@@ -39,6 +42,7 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
     match cli.command {
         Command::Ingest(a) => ingest::run(*a),
         Command::Stats(a) => stats::run(a),
+        Command::Train(a) => train::run(*a),
         Command::Verify(a) => verify::run(a),
         Command::Demo(a) => demo::run(a),
     }

@@ -579,13 +579,7 @@ impl Sink {
 
     /// Push a row to the writer in `slot`, opening, closing and reopening it as
     /// needed (a shard closes after `shard_rows` rows or when full).
-    fn push_to(
-        &mut self,
-        slot: Option<usize>,
-        label: u32,
-        idx: &[u32],
-        val: &[f32],
-    ) -> Result<()> {
+    fn push_to(&mut self, slot: Option<usize>, label: u32, idx: &[u32], val: &[f32]) -> Result<()> {
         let split = if slot.is_some() {
             Split::Train
         } else {
@@ -662,11 +656,7 @@ impl Sink {
         let writers = self.m.scatter.writers as u64;
         let scatter_seed = self.m.scatter.seed;
         // Chunk-local label numbers → class ids, once per chunk.
-        let ids: Vec<u32> = c
-            .label_names
-            .iter()
-            .map(|n| self.intern(n))
-            .collect();
+        let ids: Vec<u32> = c.label_names.iter().map(|n| self.intern(n)).collect();
         let mut rstart = 0usize;
         for r in 0..c.row_ends.len() {
             let rend = c.row_ends[r] as usize;
@@ -784,8 +774,9 @@ impl Sink {
             handles
                 .into_iter()
                 .map(|h| {
-                    h.join()
-                        .unwrap_or_else(|_| Err(Error::Invalid("internal: shard writer panicked".into())))
+                    h.join().unwrap_or_else(|_| {
+                        Err(Error::Invalid("internal: shard writer panicked".into()))
+                    })
                 })
                 .collect()
         });
@@ -1101,7 +1092,10 @@ pub fn ingest(opts: &IngestOptions, log: Log) -> Result<IngestSummary> {
     let sink = result?;
     let mut df = vec![0u32; buckets];
     for counter in dfs {
-        counter.into_inner().expect("not poisoned").add_into(&mut df);
+        counter
+            .into_inner()
+            .expect("not poisoned")
+            .add_into(&mut df);
     }
     let (_m, mut summary) = sink.finish(&opts.spec, opts.max_bad_fraction, replaced, &df)?;
     summary.input_bytes = read_bytes.load(Ordering::Relaxed);

@@ -490,7 +490,12 @@ impl Featurizer {
         if !self.numeric.is_empty() {
             let out = &mut self.merged;
             out.clear();
-            out.extend(indices[start..].iter().copied().zip(values[start..].iter().copied()));
+            out.extend(
+                indices[start..]
+                    .iter()
+                    .copied()
+                    .zip(values[start..].iter().copied()),
+            );
             out.extend_from_slice(&self.numeric);
             merge(out);
             indices.truncate(start);

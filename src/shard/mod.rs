@@ -23,8 +23,8 @@ use std::path::{Path, PathBuf};
 use std::io::Read;
 
 use crate::container::{
-    self, cast_section, AlignedBytes, AtomicFile, Container, FileBytes, Header, Kind,
-    SectionEntry, SectionSink,
+    self, cast_section, AlignedBytes, AtomicFile, Container, FileBytes, Header, Kind, SectionEntry,
+    SectionSink,
 };
 use crate::error::{Error, IoContext, Result};
 
@@ -585,8 +585,14 @@ impl ShardWriter {
         self.handle.set_len(end).at(&tmp)?;
         let mut out = &self.handle;
         for (id, side) in [
-            (SEC_INDPTR, std::mem::replace(&mut self.indptr, Side::empty())),
-            (SEC_LABELS, std::mem::replace(&mut self.labels, Side::empty())),
+            (
+                SEC_INDPTR,
+                std::mem::replace(&mut self.indptr, Side::empty()),
+            ),
+            (
+                SEC_LABELS,
+                std::mem::replace(&mut self.labels, Side::empty()),
+            ),
         ] {
             let at = container::align_up(end);
             self.handle.set_len(at).at(&tmp)?;

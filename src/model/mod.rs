@@ -1,0 +1,264 @@
+//! Model files: everything needed to score raw text, in one file.
+//!
+//! A [`crate::container`] file of kind 3, format version [`VERSION`]. Header
+//! parameters: models `M` (1 for a binary task, one per class for one-vs-rest),
+//! dimension `D` (`2^log2_buckets`), 1 if idf factors are stored, 0. Sections:
+//!
+//! | id | name      | contents                                              |
+//! |----|-----------|-------------------------------------------------------|
+//! | 1  | `meta`    | UTF-8 JSON [`ModelMeta`]: feature settings, labels, training settings, epoch log |
+//! | 2  | `weights` | `f32`, `M × D`, model-major                           |
+//! | 3  | `biases`  | `f32`, `M`                                            |
+//! | 4  | `idf`     | `f32`, `D` (only when trained with idf)               |
+//!
+//! Written atomically; loading checks the header, sizes, every checksum and that
+//! the metadata agrees with the sections.
+
+use std::path::Path;
+
+use serde::{Deserialize, Serialize};
+
+use crate::container::{self, cast_section, Container, ContainerWriter, Kind};
+use crate::error::{Error, Result};
+use crate::features::FeatureConfig;
+use crate::input::InputSpec;
+use crate::shard::Row;
+use crate::solver::{Loss, SolverConfig};
+
+/// Current model format version.
+pub const VERSION: u32 = 1;
+const SEC_META: u32 = 1;
+const SEC_WEIGHTS: u32 = 2;
+const SEC_BIASES: u32 = 3;
+const SEC_IDF: u32 = 4;
+
+fn section_name(id: u32) -> String {
+    match id {
+        SEC_META => "meta".into(),
+        SEC_WEIGHTS => "weights".into(),
+        SEC_BIASES => "biases".into(),
+        SEC_IDF => "idf".into(),
+        other => format!("unknown section {other}"),
+    }
+}
+
+/// One row of the per-epoch training log.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct EpochLog {
+    /// Epoch number, from 1.
+    pub epoch: u32,
+    /// Estimated objective: λ/2‖w‖² at the end of the epoch plus the mean weighted
+    /// loss seen during the epoch (summed over models).
+    pub objective: f64,
+    /// Mean loss on the validation split (averaged iterate), if there is one.
+    pub validation_loss: Option<f64>,
+    /// Accuracy on the validation split, if there is one.
+    pub validation_accuracy: Option<f64>,
+    /// Macro-averaged F1 on the validation split (multiclass), if there is one.
+    pub validation_macro_f1: Option<f64>,
+    /// Rows per second in this epoch.
+    pub rows_per_second: f64,
+    /// Nonzeros per second in this epoch.
+    pub nnz_per_second: f64,
+    /// Seconds spent on this epoch (training and validation).
+    pub seconds: f64,
+}
+
+/// How the model was trained.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct TrainSettings {
+    /// Solver settings.
+    pub solver: SolverConfig,
+    /// Epochs asked for.
+    pub epochs: u32,
+    /// Seed of the epoch order.
+    pub seed: u64,
+    /// Example weight per class id.
+    pub class_weights: Vec<f64>,
+    /// How class weights were chosen (`none`, `balanced` or the list given).
+    pub class_weight_rule: String,
+    /// Whether features were multiplied by idf factors.
+    pub idf: bool,
+    /// Early stopping patience, if any.
+    pub patience: Option<u32>,
+}
+
+/// The metadata section of a model.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ModelMeta {
+    /// Always `tamis-model`.
+    pub format: String,
+    /// The tamis version that wrote it.
+    pub written_by: String,
+    /// Tokenizing and hashing settings (must match the text being scored).
+    pub features: FeatureConfig,
+    /// How the training data was read (scoring uses the same fields by default).
+    pub input: InputSpec,
+    /// Label dictionary of the dataset (position = class id).
+    pub labels: Vec<String>,
+    /// The positive label of a binary model; `None` for one-vs-rest.
+    pub positive: Option<String>,
+    /// For each model, the label it scores.
+    pub model_labels: Vec<String>,
+    /// Loss trained with.
+    pub loss: Loss,
+    /// Training settings.
+    pub training: TrainSettings,
+    /// Per-epoch log.
+    pub epochs: Vec<EpochLog>,
+    /// Fingerprint of the dataset trained on (hex).
+    pub dataset_fingerprint: String,
+}
+
+/// A loaded model.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Model {
+    /// Metadata.
+    pub meta: ModelMeta,
+    /// `models × dim` weights.
+    pub weights: Vec<f32>,
+    /// One bias per model.
+    pub biases: Vec<f32>,
+    /// idf factors, if trained with them.
+    pub idf: Option<Vec<f32>>,
+}
+
+impl Model {
+    /// Number of models (1 binary, else classes).
+    pub fn models(&self) -> usize {
+        self.biases.len()
+    }
+
+    /// Feature dimension.
+    pub fn dim(&self) -> usize {
+        self.meta.features.buckets() as usize
+    }
+
+    /// Whether this is a binary model.
+    pub fn is_binary(&self) -> bool {
+        self.meta.positive.is_some()
+    }
+
+    /// Weights of model `m`.
+    pub fn weights_of(&self, m: usize) -> &[f32] {
+        let d = self.dim();
+        &self.weights[m * d..(m + 1) * d]
+    }
+
+    /// Scores (`w·x + b`) of a hashed row under every model.
+    pub fn scores(&self, x: &Row<'_>, out: &mut Vec<f64>) {
+        crate::solver::scores(
+            &self.weights,
+            &self.biases,
+            self.dim(),
+            x,
+            self.idf.as_deref(),
+            out,
+        )
+    }
+
+    /// Check that sections and metadata agree.
+    fn check(&self, path: &Path) -> Result<()> {
+        let bad = |what: String| Error::Corrupt {
+            path: path.to_path_buf(),
+            what,
+        };
+        if self.meta.format != "tamis-model" {
+            return Err(bad(format!(
+                "format {:?} is not tamis-model",
+                self.meta.format
+            )));
+        }
+        self.meta
+            .features
+            .validate()
+            .map_err(|e| bad(e.to_string()))?;
+        let m = self.meta.model_labels.len();
+        if m == 0 || self.biases.len() != m || self.weights.len() != m * self.dim() {
+            return Err(bad(format!(
+                "{} weights and {} biases do not fit {m} models of {} features",
+                self.weights.len(),
+                self.biases.len(),
+                self.dim()
+            )));
+        }
+        if let Some(idf) = &self.idf {
+            if idf.len() != self.dim() {
+                return Err(bad("idf section has the wrong length".into()));
+            }
+        }
+        if self
+            .weights
+            .iter()
+            .chain(&self.biases)
+            .any(|v| !v.is_finite())
+        {
+            return Err(bad("weights are not finite".into()));
+        }
+        Ok(())
+    }
+
+    /// Write atomically to `path`.
+    pub fn save(&self, path: &Path) -> Result<()> {
+        self.check(path)?;
+        let meta = serde_json::to_vec_pretty(&self.meta).expect("metadata serialises");
+        let mut w = ContainerWriter::create(path, Kind::Model, VERSION, 4)?;
+        w.section(SEC_META, &meta)?;
+        w.section(SEC_WEIGHTS, bytemuck::cast_slice(&self.weights))?;
+        w.section(SEC_BIASES, bytemuck::cast_slice(&self.biases))?;
+        if let Some(idf) = &self.idf {
+            w.section(SEC_IDF, bytemuck::cast_slice(idf))?;
+        }
+        w.set_params([
+            self.models() as u64,
+            self.dim() as u64,
+            self.idf.is_some() as u64,
+            0,
+        ]);
+        w.finish()
+    }
+
+    /// Load and fully check a model file.
+    pub fn load(path: &Path) -> Result<Model> {
+        let c = Container::parse(
+            container::map_file(path)?,
+            path,
+            Kind::Model,
+            VERSION..=VERSION,
+        )?;
+        c.verify(section_name)?;
+        Self::from_container(&c)
+    }
+
+    fn from_container<B: AsRef<[u8]>>(c: &Container<B>) -> Result<Model> {
+        let path = c.path();
+        let meta: ModelMeta =
+            serde_json::from_slice(c.section(SEC_META, "meta")?).map_err(|e| Error::Corrupt {
+                path: path.to_path_buf(),
+                what: format!("bad model metadata: {e}"),
+            })?;
+        let weights: &[f32] = cast_section(c.section(SEC_WEIGHTS, "weights")?, path, "weights")?;
+        let biases: &[f32] = cast_section(c.section(SEC_BIASES, "biases")?, path, "biases")?;
+        let idf = if c.header().params[2] == 1 {
+            let s: &[f32] = cast_section(c.section(SEC_IDF, "idf")?, path, "idf")?;
+            Some(s.to_vec())
+        } else {
+            None
+        };
+        let model = Model {
+            meta,
+            weights: weights.to_vec(),
+            biases: biases.to_vec(),
+            idf,
+        };
+        let [m, d, _, _] = c.header().params;
+        if m as usize != model.models() || d as usize != model.dim() {
+            return Err(Error::Corrupt {
+                path: path.to_path_buf(),
+                what: "header and metadata disagree on the model's shape".into(),
+            });
+        }
+        model.check(path)?;
+        Ok(model)
+    }
+}

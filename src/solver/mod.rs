@@ -1,0 +1,760 @@
+//! The solver: averaged Pegasos-style stochastic sub-gradient descent for
+//! regularised linear classifiers.
+//!
+//! Objective (per class model in one-vs-rest):
+//!
+//! ```text
+//! F(w, b) = λ/2·‖w‖² + (1/n)·Σᵢ cᵢ·loss(yᵢ(w·xᵢ + b)),   b unregularised
+//! ```
+//!
+//! Step `t` (one mini-batch `Bₜ` of size `k`) with `ηₜ = 1/(λ(t + t₀))`
+//! (Shalev-Shwartz, Singer, Srebro, Cotter 2011, "Pegasos", with an offset
+//! `t₀ = max(1, 1/(λ·η₀))` so the first step is `η₀` rather than `1/λ` and the
+//! first factor `1 − η₁λ` is never 0):
+//!
+//! ```text
+//! w ← (1 − ηₜλ)·w − (ηₜ/k)·Σ_{i∈Bₜ} cᵢ·loss'(mᵢ)·yᵢ·xᵢ        mᵢ = yᵢ(w·xᵢ + b)
+//! b ← b − (ηₜ/k)·Σ_{i∈Bₜ} cᵢ·loss'(mᵢ)·yᵢ
+//! optionally w ← min(1, (1/√λ)/‖w‖)·w                          (projection)
+//! ```
+//!
+//! **Scale trick.** `w = s·v`: the shrink is `s ← s(1 − ηλ)` and the sparse part
+//! updates `v` by `−(η/(k·s))·g·x`, so a step costs O(nnz). When `s` falls below
+//! `1e-9` (or `v` grows large) `v` is multiplied by `s` and `s` reset to 1, so
+//! nothing underflows or overflows.
+//!
+//! **Lazy averaging** (the sparse averaged SGD of Xu 2011; Bottou 2012, "Stochastic
+//! Gradient Descent Tricks", gives the form w̄ = (A + αW)/β). From the first step
+//! of epoch `average_from` on, the sum of the iterates is kept as `U + B·v`: when
+//! `v` changes by a sparse `δ` and the scale becomes `s'`, then `U ← U − B·δ` and
+//! `B ← B + s'`; a renormalisation of `v` by `s` divides `B` by `s`. The average is
+//! `(U + B·v)/K` after `K` averaged steps, and this is the model written.
+
+pub mod order;
+
+use rayon::prelude::*;
+use serde::{Deserialize, Serialize};
+
+use crate::error::{Error, Result};
+use crate::shard::{Row, Shard};
+
+/// Loss functions of the margin `m = y(w·x + b)`.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize, clap::ValueEnum)]
+#[serde(rename_all = "kebab-case")]
+pub enum Loss {
+    /// `max(0, 1 − m)`: the soft-margin support vector machine.
+    Hinge,
+    /// `ln(1 + e^(−m))`: logistic regression; scores map to probabilities.
+    Logistic,
+    /// `max(0, 1 − m)²`: smooth, penalises violations more.
+    SquaredHinge,
+}
+
+impl Loss {
+    /// The loss at margin `m`.
+    #[inline]
+    pub fn value(self, m: f64) -> f64 {
+        match self {
+            Loss::Hinge => (1.0 - m).max(0.0),
+            Loss::Logistic => {
+                if m > 0.0 {
+                    (-m).exp().ln_1p()
+                } else {
+                    -m + m.exp().ln_1p()
+                }
+            }
+            Loss::SquaredHinge => {
+                let h = (1.0 - m).max(0.0);
+                h * h
+            }
+        }
+    }
+
+    /// A (sub)derivative of the loss with respect to `m`.
+    #[inline]
+    pub fn derivative(self, m: f64) -> f64 {
+        match self {
+            Loss::Hinge => {
+                if m < 1.0 {
+                    -1.0
+                } else {
+                    0.0
+                }
+            }
+            Loss::Logistic => {
+                if m > 0.0 {
+                    let e = (-m).exp();
+                    -e / (1.0 + e)
+                } else {
+                    -1.0 / (1.0 + m.exp())
+                }
+            }
+            Loss::SquaredHinge => -2.0 * (1.0 - m).max(0.0),
+        }
+    }
+
+    /// Name used in files and tables.
+    pub fn name(self) -> &'static str {
+        match self {
+            Loss::Hinge => "hinge",
+            Loss::Logistic => "logistic",
+            Loss::SquaredHinge => "squared-hinge",
+        }
+    }
+}
+
+/// Rows the solver can read: a shard, or rows held in memory (tests, benches).
+pub trait Rows: Sync {
+    /// Number of rows.
+    fn len(&self) -> usize;
+    /// Whether there are no rows.
+    fn is_empty(&self) -> bool {
+        self.len() == 0
+    }
+    /// Row `i`.
+    fn row(&self, i: usize) -> Row<'_>;
+}
+
+impl<B: AsRef<[u8]> + Sync> Rows for Shard<B> {
+    fn len(&self) -> usize {
+        self.rows()
+    }
+    fn row(&self, i: usize) -> Row<'_> {
+        Shard::row(self, i)
+    }
+}
+
+/// Rows held in memory in CSR form.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct MemRows {
+    /// Row offsets (`len + 1`).
+    pub indptr: Vec<usize>,
+    /// Column indices.
+    pub indices: Vec<u32>,
+    /// Values.
+    pub values: Vec<f32>,
+    /// Class ids.
+    pub labels: Vec<u32>,
+}
+
+impl MemRows {
+    /// An empty set.
+    pub fn new() -> Self {
+        MemRows {
+            indptr: vec![0],
+            ..Default::default()
+        }
+    }
+
+    /// Append a row (indices strictly increasing).
+    pub fn push(&mut self, label: u32, indices: &[u32], values: &[f32]) {
+        self.indices.extend_from_slice(indices);
+        self.values.extend_from_slice(values);
+        self.indptr.push(self.indices.len());
+        self.labels.push(label);
+    }
+}
+
+impl Rows for MemRows {
+    fn len(&self) -> usize {
+        self.labels.len()
+    }
+    fn row(&self, i: usize) -> Row<'_> {
+        let (a, b) = (self.indptr[i], self.indptr[i + 1]);
+        Row {
+            label: self.labels[i],
+            indices: &self.indices[a..b],
+            values: &self.values[a..b],
+        }
+    }
+}
+
+/// Settings of a training run.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct SolverConfig {
+    /// Regularisation strength λ > 0.
+    pub lambda: f64,
+    /// Loss.
+    pub loss: Loss,
+    /// Rows per step.
+    pub batch: usize,
+    /// First step size η₀ (sets the offset t₀ = max(1, 1/(λ·η₀))).
+    pub eta0: f64,
+    /// Project onto the ball of radius 1/√λ after each step.
+    pub project: bool,
+    /// Epoch (0-based) from whose first step the iterates are averaged.
+    pub average_from: u32,
+}
+
+impl SolverConfig {
+    /// Check ranges.
+    pub fn validate(&self) -> Result<()> {
+        if !(self.lambda > 0.0 && self.lambda.is_finite()) {
+            return Err(Error::Invalid(format!(
+                "--lambda must be a positive number, got {}",
+                self.lambda
+            )));
+        }
+        if self.batch == 0 || self.batch > 1 << 20 {
+            return Err(Error::Invalid(format!(
+                "--batch must be in 1..=1048576, got {}",
+                self.batch
+            )));
+        }
+        if !(self.eta0 > 0.0 && self.eta0.is_finite()) {
+            return Err(Error::Invalid(format!(
+                "--eta0 must be a positive number, got {}",
+                self.eta0
+            )));
+        }
+        Ok(())
+    }
+
+    /// The step offset t₀.
+    pub fn t0(&self) -> f64 {
+        (1.0 / (self.lambda * self.eta0)).max(1.0)
+    }
+}
+
+/// One linear model `w·x + b` with `w = s·v` and its lazily kept average.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Linear {
+    v: Vec<f64>,
+    s: f64,
+    b: f64,
+    /// ‖v‖², kept for the projection.
+    vnorm2: f64,
+    u: Vec<f64>,
+    big_b: f64,
+    bias_sum: f64,
+    averaged: u64,
+}
+
+const RENORM_BELOW: f64 = 1e-9;
+
+impl Linear {
+    /// A zero model over `dim` features.
+    pub fn new(dim: usize) -> Self {
+        Linear {
+            v: vec![0.0; dim],
+            s: 1.0,
+            b: 0.0,
+            vnorm2: 0.0,
+            u: vec![0.0; dim],
+            big_b: 0.0,
+            bias_sum: 0.0,
+            averaged: 0,
+        }
+    }
+
+    /// A model starting from weights `w` and bias `b`.
+    pub fn from_weights(w: &[f32], b: f32) -> Self {
+        let mut m = Linear::new(w.len());
+        for (v, &x) in m.v.iter_mut().zip(w) {
+            *v = x as f64;
+        }
+        m.vnorm2 = m.v.iter().map(|x| x * x).sum();
+        m.b = b as f64;
+        m
+    }
+
+    /// Number of features.
+    pub fn dim(&self) -> usize {
+        self.v.len()
+    }
+
+    /// `w·x + b` with the current iterate; indices are masked to the dimension
+    /// (a damaged shard cannot index out of bounds).
+    #[inline]
+    pub fn margin(&self, x: &Row<'_>, idf: Option<&[f32]>) -> f64 {
+        let mask = self.v.len() - 1;
+        let mut acc = 0.0f64;
+        match idf {
+            None => {
+                for (&i, &val) in x.indices.iter().zip(x.values) {
+                    acc += self.v[i as usize & mask] * val as f64;
+                }
+            }
+            Some(idf) => {
+                for (&i, &val) in x.indices.iter().zip(x.values) {
+                    let j = i as usize & mask;
+                    acc += self.v[j] * (val * idf[j]) as f64;
+                }
+            }
+        }
+        self.s * acc + self.b
+    }
+
+    /// Take one step: shrink by `1 − ηλ`, add `−η/k · Σ coef_i x_i` where
+    /// `coef_i = cᵢ·loss'(mᵢ)·yᵢ` (zero entries skipped), update the bias and
+    /// the average.
+    #[allow(clippy::too_many_arguments)]
+    fn step<R: Rows + ?Sized>(
+        &mut self,
+        rows: &R,
+        batch: &[usize],
+        coefs: &[f64],
+        idf: Option<&[f32]>,
+        eta: f64,
+        cfg: &SolverConfig,
+        average: bool,
+    ) {
+        let k = batch.len() as f64;
+        self.s *= 1.0 - eta * cfg.lambda;
+        if self.s < RENORM_BELOW {
+            self.renormalize();
+        }
+        let mask = self.v.len() - 1;
+        let scale = eta / (k * self.s);
+        let mut bias_grad = 0.0;
+        let big_b = if average { self.big_b } else { 0.0 };
+        for (&r, &c) in batch.iter().zip(coefs) {
+            if c == 0.0 {
+                continue;
+            }
+            bias_grad += c;
+            let x = rows.row(r);
+            let f = -scale * c;
+            for (&i, &val) in x.indices.iter().zip(x.values) {
+                let j = i as usize & mask;
+                let xv = match idf {
+                    Some(idf) => (val * idf[j]) as f64,
+                    None => val as f64,
+                };
+                let d = f * xv;
+                let old = self.v[j];
+                let new = old + d;
+                self.vnorm2 += new * new - old * old;
+                self.v[j] = new;
+                if big_b != 0.0 {
+                    self.u[j] -= big_b * d;
+                }
+            }
+        }
+        self.b -= eta / k * bias_grad;
+        if cfg.project {
+            let r2 = 1.0 / cfg.lambda;
+            let w2 = self.s * self.s * self.vnorm2.max(0.0);
+            if w2 > r2 {
+                self.s *= (r2 / w2).sqrt();
+                if self.s < RENORM_BELOW {
+                    self.renormalize();
+                }
+            }
+        }
+        if average {
+            self.big_b += self.s;
+            self.bias_sum += self.b;
+            self.averaged += 1;
+        }
+    }
+
+    /// Fold the scale into `v` (keeps the average intact).
+    fn renormalize(&mut self) {
+        let s = self.s;
+        for x in &mut self.v {
+            *x *= s;
+        }
+        self.vnorm2 = self.v.iter().map(|x| x * x).sum();
+        self.big_b /= s;
+        self.s = 1.0;
+    }
+
+    /// The current iterate `w` and `b`.
+    pub fn current(&self) -> (Vec<f32>, f32) {
+        (
+            self.v.iter().map(|&x| (self.s * x) as f32).collect(),
+            self.b as f32,
+        )
+    }
+
+    /// The averaged iterate (or the current one before averaging started).
+    pub fn averaged(&self) -> (Vec<f32>, f32) {
+        if self.averaged == 0 {
+            return self.current();
+        }
+        let k = self.averaged as f64;
+        (
+            self.u
+                .iter()
+                .zip(&self.v)
+                .map(|(&u, &v)| ((u + self.big_b * v) / k) as f32)
+                .collect(),
+            (self.bias_sum / k) as f32,
+        )
+    }
+
+    /// Averaged steps taken.
+    pub fn averaged_steps(&self) -> u64 {
+        self.averaged
+    }
+}
+
+/// The binary targets of a model: which class ids count as positive.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Target {
+    /// Positive when the class id equals this one.
+    Class(u32),
+}
+
+impl Target {
+    #[inline]
+    fn y(&self, label: u32) -> f64 {
+        match self {
+            Target::Class(c) => {
+                if label == *c {
+                    1.0
+                } else {
+                    -1.0
+                }
+            }
+        }
+    }
+}
+
+/// Training state of all models of a task (one for binary, one per class for
+/// one-vs-rest), sharing one read of each row.
+pub struct Trainer {
+    /// The models.
+    pub models: Vec<Linear>,
+    targets: Vec<Target>,
+    /// Per class id: the example weight cᵢ.
+    pub class_weights: Vec<f64>,
+    /// Configuration.
+    pub cfg: SolverConfig,
+    /// Steps taken so far.
+    pub t: u64,
+    idf: Option<Vec<f32>>,
+    coefs: Vec<Vec<f64>>,
+    margins: Vec<f64>,
+}
+
+/// Sums gathered while training on a batch or evaluating a set.
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
+pub struct Tally {
+    /// Rows seen.
+    pub rows: u64,
+    /// Nonzeros read.
+    pub nnz: u64,
+    /// Sum of cᵢ·loss over rows, summed over models.
+    pub loss: f64,
+}
+
+impl Trainer {
+    /// A trainer for `targets` (one model each) over `dim` features.
+    pub fn new(
+        dim: usize,
+        targets: Vec<Target>,
+        class_weights: Vec<f64>,
+        cfg: SolverConfig,
+        idf: Option<Vec<f32>>,
+    ) -> Result<Self> {
+        cfg.validate()?;
+        if !dim.is_power_of_two() {
+            return Err(Error::Invalid(format!(
+                "dimension {dim} is not a power of two"
+            )));
+        }
+        Ok(Trainer {
+            models: targets.iter().map(|_| Linear::new(dim)).collect(),
+            coefs: vec![Vec::new(); targets.len()],
+            targets,
+            class_weights,
+            cfg,
+            t: 0,
+            idf,
+            margins: Vec::new(),
+        })
+    }
+
+    /// Replace the models (warm start); dimensions must match.
+    pub fn set_models(&mut self, models: Vec<Linear>) -> Result<()> {
+        if models.len() != self.models.len()
+            || models.iter().any(|m| m.dim() != self.models[0].dim())
+        {
+            return Err(Error::Invalid(
+                "warm-start models do not match the task".into(),
+            ));
+        }
+        self.models = models;
+        Ok(())
+    }
+
+    /// One step over the rows `batch` of `rows`. Margins are computed in
+    /// parallel against the current weights; each model's update is applied in
+    /// row order, models in parallel, so the result does not depend on the
+    /// number of threads.
+    pub fn step<R: Rows + ?Sized>(&mut self, rows: &R, batch: &[usize], average: bool) -> Tally {
+        self.t += 1;
+        let eta = 1.0 / (self.cfg.lambda * (self.t as f64 - 1.0 + self.cfg.t0()));
+        let cfg = &self.cfg;
+        let idf = self.idf.as_deref();
+        let weights = &self.class_weights;
+        let mut tally = Tally {
+            rows: batch.len() as u64,
+            ..Tally::default()
+        };
+        tally.nnz = batch
+            .iter()
+            .map(|&r| rows.row(r).indices.len() as u64)
+            .sum();
+        let losses: Vec<f64> = if self.models.len() == 1 {
+            // Binary: rows in parallel for the margins, then one update.
+            let m = &self.models[0];
+            let target = &self.targets[0];
+            self.margins.clear();
+            batch
+                .par_iter()
+                .with_min_len(256)
+                .map(|&r| m.margin(&rows.row(r), idf))
+                .collect_into_vec(&mut self.margins);
+            let coefs = &mut self.coefs[0];
+            coefs.clear();
+            let mut loss = 0.0;
+            for (&r, &mg) in batch.iter().zip(&self.margins) {
+                let label = rows.row(r).label;
+                let y = target.y(label);
+                let c = weights.get(label as usize).copied().unwrap_or(1.0);
+                loss += c * cfg.loss.value(y * mg);
+                coefs.push(c * cfg.loss.derivative(y * mg) * y);
+            }
+            self.models[0].step(rows, batch, coefs, idf, eta, cfg, average);
+            vec![loss]
+        } else {
+            // One-vs-rest: models in parallel, each over the whole batch.
+            self.models
+                .par_iter_mut()
+                .zip(self.coefs.par_iter_mut())
+                .zip(self.targets.par_iter())
+                .map(|((m, coefs), target)| {
+                    coefs.clear();
+                    let mut loss = 0.0;
+                    for &r in batch {
+                        let x = rows.row(r);
+                        let y = target.y(x.label);
+                        let c = weights.get(x.label as usize).copied().unwrap_or(1.0);
+                        let mg = y * m.margin(&x, idf);
+                        loss += c * cfg.loss.value(mg);
+                        coefs.push(c * cfg.loss.derivative(mg) * y);
+                    }
+                    m.step(rows, batch, coefs, idf, eta, cfg, average);
+                    loss
+                })
+                .collect()
+        };
+        tally.loss = losses.iter().sum();
+        tally
+    }
+
+    /// The idf factors in use, if any.
+    pub fn idf(&self) -> Option<&[f32]> {
+        self.idf.as_deref()
+    }
+
+    /// λ/2·‖w‖² summed over models (current iterates).
+    pub fn regularizer(&self) -> f64 {
+        self.models
+            .iter()
+            .map(|m| 0.5 * self.cfg.lambda * m.s * m.s * m.vnorm2.max(0.0))
+            .sum()
+    }
+}
+
+/// Scores of a row under fixed weights (`classes × dim`, row-major) and biases.
+pub fn scores(
+    weights: &[f32],
+    biases: &[f32],
+    dim: usize,
+    x: &Row<'_>,
+    idf: Option<&[f32]>,
+    out: &mut Vec<f64>,
+) {
+    out.clear();
+    let mask = dim - 1;
+    for (c, &b) in biases.iter().enumerate() {
+        let w = &weights[c * dim..(c + 1) * dim];
+        let mut acc = 0.0f64;
+        for (&i, &v) in x.indices.iter().zip(x.values) {
+            let j = i as usize & mask;
+            let xv = match idf {
+                Some(idf) => v * idf[j],
+                None => v,
+            };
+            acc += (w[j] * xv) as f64;
+        }
+        out.push(acc + b as f64);
+    }
+}
+
+/// The primal objective `λ/2‖w‖² + (1/n)Σ cᵢ loss(yᵢ(w·xᵢ+b))` of one binary
+/// model on `rows` (used by tests and reports).
+pub fn objective<R: Rows + ?Sized>(
+    w: &[f32],
+    b: f32,
+    rows: &R,
+    target: u32,
+    loss: Loss,
+    lambda: f64,
+    weights: &[f64],
+) -> f64 {
+    let reg: f64 = w.iter().map(|&x| (x as f64) * (x as f64)).sum::<f64>() * lambda / 2.0;
+    let mut sum = 0.0;
+    let mut out = Vec::new();
+    for i in 0..rows.len() {
+        let x = rows.row(i);
+        scores(w, &[b], w.len(), &x, None, &mut out);
+        let y = if x.label == target { 1.0 } else { -1.0 };
+        let c = weights.get(x.label as usize).copied().unwrap_or(1.0);
+        sum += c * loss.value(y * out[0]);
+    }
+    reg + sum / rows.len().max(1) as f64
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn cfg(lambda: f64, batch: usize) -> SolverConfig {
+        SolverConfig {
+            lambda,
+            loss: Loss::Hinge,
+            batch,
+            eta0: 1.0,
+            project: false,
+            average_from: 1,
+        }
+    }
+
+    #[test]
+    fn losses_and_derivatives() {
+        for loss in [Loss::Hinge, Loss::Logistic, Loss::SquaredHinge] {
+            for &m in &[-3.0, -0.5, 0.0, 0.3, 0.99, 1.5, 40.0, -40.0] {
+                let h = 1e-6;
+                if loss == Loss::Hinge && (m - 1.0f64).abs() < 1e-3 {
+                    continue;
+                }
+                let num = (loss.value(m + h) - loss.value(m - h)) / (2.0 * h);
+                assert!((num - loss.derivative(m)).abs() < 1e-4, "{loss:?} at {m}");
+            }
+        }
+        assert!((Loss::Logistic.value(0.0) - 2f64.ln()).abs() < 1e-12);
+        assert!(Loss::Logistic.value(-800.0).is_finite());
+        assert_eq!(Loss::Hinge.value(2.0), 0.0);
+    }
+
+    /// Scale trick + lazy average equal the plain computation (dense w, explicit
+    /// running mean) on random sparse data.
+    #[test]
+    fn lazy_average_matches_explicit() {
+        use rand::{Rng, SeedableRng};
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(5);
+        let dim = 64;
+        let mut rows = MemRows::new();
+        for _ in 0..300 {
+            let mut idx: Vec<u32> = (0..dim as u32)
+                .filter(|_| rng.random::<f64>() < 0.1)
+                .collect();
+            idx.dedup();
+            let val: Vec<f32> = idx.iter().map(|_| rng.random_range(-1.0..1.0)).collect();
+            rows.push(rng.random_range(0..2), &idx, &val);
+        }
+        let c = SolverConfig {
+            project: true,
+            ..cfg(0.01, 3)
+        };
+        let mut tr = Trainer::new(dim, vec![Target::Class(1)], vec![], c.clone(), None).unwrap();
+        // Explicit reference.
+        let mut w = vec![0.0f64; dim];
+        let mut b = 0.0f64;
+        let mut sum = vec![0.0f64; dim];
+        let mut bsum = 0.0;
+        let mut k = 0.0;
+        let order: Vec<usize> = (0..rows.len()).collect();
+        for (t, batch) in order.chunks(3).enumerate() {
+            let average = t >= 20;
+            let eta = 1.0 / (c.lambda * (t as f64 + c.t0()));
+            let mut g = vec![0.0; dim];
+            let mut gb = 0.0;
+            for &r in batch {
+                let x = rows.row(r);
+                let y = if x.label == 1 { 1.0 } else { -1.0 };
+                let m: f64 = x
+                    .indices
+                    .iter()
+                    .zip(x.values)
+                    .map(|(&i, &v)| w[i as usize] * v as f64)
+                    .sum::<f64>()
+                    + b;
+                let d = Loss::Hinge.derivative(y * m) * y;
+                for (&i, &v) in x.indices.iter().zip(x.values) {
+                    g[i as usize] += d * v as f64;
+                }
+                gb += d;
+            }
+            let kk = batch.len() as f64;
+            for j in 0..dim {
+                w[j] = (1.0 - eta * c.lambda) * w[j] - eta / kk * g[j];
+            }
+            b -= eta / kk * gb;
+            let n2: f64 = w.iter().map(|x| x * x).sum();
+            if n2 > 1.0 / c.lambda {
+                let f = (1.0 / c.lambda / n2).sqrt();
+                w.iter_mut().for_each(|x| *x *= f);
+            }
+            if average {
+                for j in 0..dim {
+                    sum[j] += w[j];
+                }
+                bsum += b;
+                k += 1.0;
+            }
+            tr.step(&rows, batch, average);
+        }
+        let (cw, cb) = tr.models[0].current();
+        let (aw, ab) = tr.models[0].averaged();
+        for j in 0..dim {
+            assert!(
+                (cw[j] as f64 - w[j]).abs() < 1e-4 * (1.0 + w[j].abs()),
+                "current {j}"
+            );
+            let mean = sum[j] / k;
+            assert!(
+                (aw[j] as f64 - mean).abs() < 1e-4 * (1.0 + mean.abs()),
+                "average {j}: {} vs {mean}",
+                aw[j]
+            );
+        }
+        assert!((cb as f64 - b).abs() < 1e-4);
+        assert!((ab as f64 - bsum / k).abs() < 1e-4);
+    }
+
+    #[test]
+    fn renormalisation_keeps_values() {
+        let mut m = Linear::new(4);
+        m.v = vec![1.0, -2.0, 0.0, 4.0];
+        m.vnorm2 = 21.0;
+        m.s = 1e-12;
+        m.u = vec![0.5, 0.5, 0.5, 0.5];
+        m.big_b = 3e-12;
+        m.averaged = 2;
+        let before = (m.current(), m.averaged());
+        m.renormalize();
+        assert_eq!(m.s, 1.0);
+        let after = (m.current(), m.averaged());
+        for (a, b) in before.0 .0.iter().zip(&after.0 .0) {
+            assert!((a - b).abs() <= 1e-6 * a.abs().max(1e-30));
+        }
+        for (a, b) in before.1 .0.iter().zip(&after.1 .0) {
+            assert!((a - b).abs() <= 1e-6 * a.abs().max(1e-6));
+        }
+    }
+
+    #[test]
+    fn bad_settings_are_refused() {
+        assert!(cfg(0.0, 1).validate().is_err());
+        assert!(cfg(-1.0, 1).validate().is_err());
+        assert!(cfg(f64::NAN, 1).validate().is_err());
+        assert!(cfg(1e-3, 0).validate().is_err());
+        assert!(Trainer::new(100, vec![Target::Class(0)], vec![], cfg(1e-3, 1), None).is_err());
+    }
+}
