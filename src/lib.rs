@@ -43,9 +43,11 @@ compile_error!(
 pub mod container;
 pub mod dataset;
 pub mod error;
+pub mod eval;
 pub mod features;
 pub mod input;
 pub mod model;
+pub mod score;
 pub mod shard;
 pub mod solver;
 pub mod synth;

@@ -12,9 +12,13 @@ fn main() -> ExitCode {
         Ok(code) => code,
         Err(e) => {
             // Output piped into `head` and closed early: quiet success.
+            let broken = |k: Option<std::io::ErrorKind>| k == Some(std::io::ErrorKind::BrokenPipe);
             if e.chain().any(|c| {
-                c.downcast_ref::<std::io::Error>()
-                    .is_some_and(|io| io.kind() == std::io::ErrorKind::BrokenPipe)
+                broken(c.downcast_ref::<std::io::Error>().map(|io| io.kind()))
+                    || broken(
+                        c.downcast_ref::<serde_json::Error>()
+                            .and_then(|j| j.io_error_kind()),
+                    )
             }) {
                 return ExitCode::SUCCESS;
             }

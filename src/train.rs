@@ -10,10 +10,9 @@ use std::io::IsTerminal;
 use std::path::{Path, PathBuf};
 use std::time::Instant;
 
-use rayon::prelude::*;
-
 use crate::dataset::{self, docfreq::DocFreq, Log, Manifest, Split};
 use crate::error::{Error, Result};
+use crate::eval::{evaluate, per_class, Weights};
 use crate::model::{EpochLog, Model, ModelMeta, TrainSettings};
 use crate::shard::Shard;
 use crate::solver::order::{self, Group, Interleave};
@@ -126,126 +125,6 @@ pub fn idf_of(dir: &Path, m: &Manifest) -> Result<Vec<f32>> {
         .iter()
         .map(|&c| (((1 + n) as f64 / (1 + c) as f64).ln() + 1.0) as f32)
         .collect())
-}
-
-/// Validation figures of fixed weights.
-#[derive(Debug, Clone, Default, PartialEq)]
-pub struct Evaluation {
-    /// Rows.
-    pub rows: u64,
-    /// Mean loss (summed over models for one-vs-rest).
-    pub loss: f64,
-    /// Accuracy.
-    pub accuracy: f64,
-    /// Confusion counts `[true][predicted]` over class ids (binary: 0 negative, 1 positive).
-    pub confusion: Vec<Vec<u64>>,
-}
-
-/// Fixed weights of all models, for evaluation.
-#[derive(Debug, Clone, Copy)]
-pub struct Weights<'a> {
-    /// `models × dim` weights.
-    pub weights: &'a [f32],
-    /// One bias per model.
-    pub biases: &'a [f32],
-    /// Feature dimension.
-    pub dim: usize,
-    /// idf factors, if used.
-    pub idf: Option<&'a [f32]>,
-}
-
-/// Evaluate weights on shards: binary if `positive` is set.
-pub fn evaluate(
-    shards: &[Shard],
-    w: Weights<'_>,
-    positive: Option<u32>,
-    classes: usize,
-    loss: crate::solver::Loss,
-) -> Evaluation {
-    let Weights {
-        weights,
-        biases,
-        dim,
-        idf,
-    } = w;
-    let k = if positive.is_some() { 2 } else { classes };
-    let parts: Vec<(f64, Vec<Vec<u64>>)> = shards
-        .par_iter()
-        .flat_map_iter(|s| {
-            let n = s.rows();
-            let step = 4096;
-            (0..n.div_ceil(step)).map(move |c| (s, c * step, ((c + 1) * step).min(n)))
-        })
-        .map(|(s, a, b)| {
-            let mut conf = vec![vec![0u64; k]; k];
-            let mut l = 0.0;
-            let mut out = Vec::new();
-            for i in a..b {
-                let x = s.row(i);
-                crate::solver::scores(weights, biases, dim, &x, idf, &mut out);
-                match positive {
-                    Some(p) => {
-                        let y = if x.label == p { 1.0 } else { -1.0 };
-                        l += loss.value(y * out[0]);
-                        let t = (x.label == p) as usize;
-                        let pred = (out[0] > 0.0) as usize;
-                        conf[t][pred] += 1;
-                    }
-                    None => {
-                        let mut best = 0;
-                        for (c, &sc) in out.iter().enumerate() {
-                            let y = if x.label as usize == c { 1.0 } else { -1.0 };
-                            l += loss.value(y * sc);
-                            if sc > out[best] {
-                                best = c;
-                            }
-                        }
-                        let t = (x.label as usize).min(k - 1);
-                        conf[t][best] += 1;
-                    }
-                }
-            }
-            (l, conf)
-        })
-        .collect();
-    let mut conf = vec![vec![0u64; k]; k];
-    let mut l = 0.0;
-    for (pl, pc) in parts {
-        l += pl;
-        for (a, b) in conf.iter_mut().zip(pc) {
-            for (x, y) in a.iter_mut().zip(b) {
-                *x += y;
-            }
-        }
-    }
-    let rows: u64 = conf.iter().flatten().sum();
-    let correct: u64 = (0..k).map(|i| conf[i][i]).sum();
-    Evaluation {
-        rows,
-        loss: l / rows.max(1) as f64,
-        accuracy: correct as f64 / rows.max(1) as f64,
-        confusion: conf,
-    }
-}
-
-/// Per-class precision, recall and F1 from a confusion matrix.
-pub fn per_class(conf: &[Vec<u64>]) -> Vec<(f64, f64, f64)> {
-    let k = conf.len();
-    (0..k)
-        .map(|c| {
-            let tp = conf[c][c] as f64;
-            let predicted: f64 = (0..k).map(|t| conf[t][c] as f64).sum();
-            let actual: f64 = conf[c].iter().map(|&x| x as f64).sum();
-            let p = if predicted > 0.0 { tp / predicted } else { 0.0 };
-            let r = if actual > 0.0 { tp / actual } else { 0.0 };
-            let f = if p + r > 0.0 {
-                2.0 * p * r / (p + r)
-            } else {
-                0.0
-            };
-            (p, r, f)
-        })
-        .collect()
 }
 
 /// The header of the per-epoch table.

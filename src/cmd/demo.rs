@@ -7,12 +7,14 @@ use std::process::ExitCode;
 use anyhow::Context;
 use tamis::dataset::{self, Choices, IngestOptions};
 use tamis::input::InputSpec;
+use tamis::solver::{Loss, SolverConfig};
 use tamis::synth::{Synth, SynthConfig};
+use tamis::train::{self, ClassWeight, TrainOptions};
 
 /// Options of `tamis demo`.
 #[derive(Debug, clap::Args)]
 pub struct Args {
-    /// Folder for the demo's files; replaced if it holds an earlier demo.
+    /// Folder for the demo's files; an earlier demo's files in it are replaced.
     #[arg(long, default_value = "tamis-demo", value_name = "DIR")]
     pub dir: PathBuf,
 
@@ -67,18 +69,91 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
     println!("   {}", summary.line());
     println!("3. the dataset:");
     let s = dataset::stats(&data)?;
-    let mut out = std::io::stdout().lock();
-    super::stats::print(&s, false, &mut out)?;
+    super::stats::print(&s, false, &mut std::io::stdout().lock())?;
+    println!();
+    let model = a.dir.join("inbox.tmm");
+    println!(
+        "4. training a one-vs-rest hinge model → {}",
+        model.display()
+    );
+    let topts = TrainOptions {
+        dir: data.clone(),
+        model: model.clone(),
+        solver: SolverConfig {
+            lambda: 1e-5,
+            loss: Loss::Hinge,
+            batch: 8,
+            eta0: 1.0,
+            project: false,
+            average_from: 1,
+        },
+        epochs: 5,
+        seed: 1,
+        class_weight: ClassWeight::None,
+        idf: false,
+        patience: None,
+        threads: opts.threads,
+        progress: true,
+    };
+    train::train(&topts, std::sync::Arc::new(|s: &str| println!("   {s}")))?;
+    println!();
+    println!("5. evaluating on the validation split:");
+    super::eval::run(super::eval::Args {
+        model: model.clone(),
+        data: vec![data.to_string_lossy().into_owned()],
+        split: super::eval::Which::Validation,
+        format: None,
+        label: None,
+        text: vec![],
+        numeric: vec![],
+        json: false,
+        threads: Some(opts.threads),
+    })?;
+    let examples = a.dir.join("examples.txt");
+    std::fs::write(&examples, EXAMPLES)?;
+    println!();
+    println!("6. scoring a few new messages ({}):", examples.display());
+    let loaded = tamis::model::Model::load(&model)?;
+    let lines: Vec<&str> = EXAMPLES.lines().collect();
+    tamis::score::score_inputs(
+        &loaded,
+        &[examples.to_string_lossy().into_owned()],
+        &loaded.meta.input,
+        tamis::input::LabelMode::Optional,
+        opts.threads,
+        |outs| {
+            for o in outs {
+                if let tamis::score::Outcome::Scored {
+                    line, label, score, ..
+                } = o
+                {
+                    println!("   {label:<14} {score:>7.3}  {}", lines[line as usize - 1]);
+                }
+            }
+            Ok(())
+        },
+    )?;
     println!();
     println!(
-        "files: {} (messages), {} (dataset)",
+        "files: {} (messages), {} (dataset), {} (model)",
         inbox.display(),
-        data.display()
+        data.display(),
+        model.display()
     );
     println!(
-        "next: `tamis stats {}`, `tamis verify {}`",
-        data.display(),
-        data.display()
+        "next: `tamis score {m} FILE`, `tamis eval {m} {d}`, `tamis stats {d}`",
+        m = model.display(),
+        d = data.display()
     );
     Ok(ExitCode::SUCCESS)
 }
+
+/// New messages scored at the end of the demo (invented).
+const EXAMPLES: &str = "\
+The 7:40 sailing from Osk was cancelled again, is there a later crossing?
+Congratulations! You have been selected to claim a free cash prize, click the link
+I left a blue umbrella on the upper deck of the Tarn ferry yesterday
+Is there a ramp for wheelchair boarding at Pellow pier?
+I was charged twice for my season pass, please refund one
+The crew were lovely and the coffee was great
+";

@@ -1,7 +1,9 @@
 //! Subcommands, one file each. Each has its own `Args` and a `run`.
 
 pub mod demo;
+pub mod eval;
 pub mod ingest;
+pub mod score;
 pub mod stats;
 pub mod train;
 pub mod verify;
@@ -29,6 +31,10 @@ enum Command {
     Ingest(Box<ingest::Args>),
     /// Train a max-margin (or logistic) linear classifier on a dataset.
     Train(Box<train::Args>),
+    /// Score raw text with a model: predicted label and score for every record.
+    Score(Box<score::Args>),
+    /// Measure a model on a dataset split or on labelled raw text.
+    Eval(Box<eval::Args>),
     /// Summarise a dataset: rows, labels, nonzeros, bucket fill, shards.
     Stats(stats::Args),
     /// Recompute every checksum of a dataset or a tamis file and report damage.
@@ -41,6 +47,8 @@ enum Command {
 pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
     match cli.command {
         Command::Ingest(a) => ingest::run(*a),
+        Command::Score(a) => score::run(*a),
+        Command::Eval(a) => eval::run(*a),
         Command::Stats(a) => stats::run(a),
         Command::Train(a) => train::run(*a),
         Command::Verify(a) => verify::run(a),

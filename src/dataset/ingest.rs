@@ -21,7 +21,7 @@ use std::collections::{BTreeMap, HashMap};
 use std::io::IsTerminal;
 use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicU64, Ordering};
-use std::sync::mpsc::{sync_channel, Receiver, SyncSender};
+use std::sync::mpsc::{sync_channel, Receiver};
 use std::sync::Arc;
 use std::time::Instant;
 
@@ -36,8 +36,8 @@ use super::manifest::{
 use crate::error::{Error, IoContext, Result};
 use crate::features::{CharNgrams, FeatureConfig, Featurizer, HASH_SCHEME};
 use crate::input::{
-    self, parse_chunk, BadLine, BadReason, Chunk, ChunkReader, Fingerprint, InputSpec, LabelMode,
-    ParseScratch, Source,
+    self, parse_chunk, read_inputs, BadLine, BadReason, Chunk, Fingerprint, InputSpec, LabelMode,
+    ParseScratch, ReadMsg,
 };
 use crate::shard::{ShardWriter, DEFAULT_NNZ_CAPACITY};
 use crate::util::{self, Lock};
@@ -851,49 +851,9 @@ impl Sink {
     }
 }
 
-enum ReadMsg {
-    Chunk(Chunk),
-    Done(usize, Fingerprint),
-    Failed(Error),
-}
-
 enum WriteMsg {
     Rows(Vec<ChunkOut>),
     Done(usize, Fingerprint),
-}
-
-fn read_inputs(
-    inputs: &[String],
-    spec: &InputSpec,
-    progress: Arc<AtomicU64>,
-    tx: SyncSender<ReadMsg>,
-) {
-    let mut seq = 0u64;
-    for (i, path) in inputs.iter().enumerate() {
-        let mut run = || -> Result<Fingerprint> {
-            let src = Source::open(path, progress.clone())?;
-            let mut r = ChunkReader::new(src, i, spec)?;
-            while let Some(c) = r.next_chunk(seq)? {
-                seq += 1;
-                if tx.send(ReadMsg::Chunk(c)).is_err() {
-                    // The consumer stopped (an error downstream); stop quietly.
-                    return Err(Error::Invalid(String::new()));
-                }
-            }
-            Ok(r.source().fingerprint())
-        };
-        match run() {
-            Ok(fp) => {
-                if tx.send(ReadMsg::Done(i, fp)).is_err() {
-                    return;
-                }
-            }
-            Err(e) => {
-                let _ = tx.send(ReadMsg::Failed(e));
-                return;
-            }
-        }
-    }
 }
 
 fn write_rows(mut sink: Sink, rx: Receiver<WriteMsg>) -> Result<Sink> {
@@ -1010,7 +970,9 @@ pub fn ingest(opts: &IngestOptions, log: Log) -> Result<IngestSummary> {
         let inputs = &opts.inputs;
         std::thread::Builder::new()
             .name("tamis-read".into())
-            .spawn_scoped(s, move || read_inputs(inputs, spec, rb, rtx))
+            .spawn_scoped(s, move || {
+                read_inputs(inputs, spec, LabelMode::Required, rb, rtx)
+            })
             .map_err(|e| Error::Invalid(format!("cannot start a thread: {e}")))?;
         let writer = std::thread::Builder::new()
             .name("tamis-write".into())

@@ -279,17 +279,25 @@ pub struct ChunkReader {
     line: u64,
     columns: Option<Arc<parse::Columns>>,
     target: usize,
+    label_required: bool,
 }
 
 impl ChunkReader {
     /// Start reading `src`, input number `input`. For CSV the header record is
-    /// read here and the wanted columns looked up (a missing column is an error).
-    pub fn new(src: Source, input: usize, spec: &InputSpec) -> Result<Self> {
-        Self::with_target(src, input, spec, CHUNK_BYTES)
+    /// read here and the wanted columns looked up (a missing column is an error;
+    /// a missing label column only when labels are required).
+    pub fn new(src: Source, input: usize, spec: &InputSpec, mode: LabelMode) -> Result<Self> {
+        Self::with_target(src, input, spec, mode, CHUNK_BYTES)
     }
 
     /// As [`ChunkReader::new`] with a chosen chunk size (tests use small ones).
-    pub fn with_target(src: Source, input: usize, spec: &InputSpec, target: usize) -> Result<Self> {
+    pub fn with_target(
+        src: Source,
+        input: usize,
+        spec: &InputSpec,
+        mode: LabelMode,
+        target: usize,
+    ) -> Result<Self> {
         let mut r = ChunkReader {
             src,
             input,
@@ -299,6 +307,7 @@ impl ChunkReader {
             line: 1,
             columns: None,
             target: target.max(1),
+            label_required: mode == LabelMode::Required,
         };
         r.skip_bom()?;
         if spec.format == Format::Csv {
@@ -395,10 +404,11 @@ impl ChunkReader {
             };
             let header: Vec<u8> = self.carry.drain(..end).collect();
             self.line += memchr::memchr_iter(b'\n', &header).count() as u64;
-            self.columns = Some(Arc::new(parse::Columns::from_header(
+            self.columns = Some(Arc::new(parse::Columns::from_header_mode(
                 &header,
                 &self.spec,
                 &self.src.name,
+                self.label_required,
             )?));
             return Ok(());
         }
@@ -491,6 +501,54 @@ impl ChunkReader {
     }
 }
 
+/// A message from [`read_inputs`].
+pub enum ReadMsg {
+    /// The next chunk, in input order.
+    Chunk(Chunk),
+    /// Input number `.0` is done; its fingerprint.
+    Done(usize, Fingerprint),
+    /// Reading failed; nothing more follows.
+    Failed(Error),
+}
+
+/// Read `inputs` in order and send their chunks (numbered across inputs) to
+/// `tx`; meant to run on a thread of its own. Stops quietly when the receiver
+/// hangs up.
+pub fn read_inputs(
+    inputs: &[String],
+    spec: &InputSpec,
+    mode: LabelMode,
+    progress: Arc<AtomicU64>,
+    tx: std::sync::mpsc::SyncSender<ReadMsg>,
+) {
+    let mut seq = 0u64;
+    for (i, path) in inputs.iter().enumerate() {
+        let mut run = || -> Result<Option<Fingerprint>> {
+            let src = Source::open(path, progress.clone())?;
+            let mut r = ChunkReader::new(src, i, spec, mode)?;
+            while let Some(c) = r.next_chunk(seq)? {
+                seq += 1;
+                if tx.send(ReadMsg::Chunk(c)).is_err() {
+                    return Ok(None);
+                }
+            }
+            Ok(Some(r.source().fingerprint()))
+        };
+        match run() {
+            Ok(Some(fp)) => {
+                if tx.send(ReadMsg::Done(i, fp)).is_err() {
+                    return;
+                }
+            }
+            Ok(None) => return,
+            Err(e) => {
+                let _ = tx.send(ReadMsg::Failed(e));
+                return;
+            }
+        }
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -503,7 +561,7 @@ mod tests {
     }
 
     fn chunks(src: Source, spec: &InputSpec, target: usize) -> Vec<Chunk> {
-        let mut r = ChunkReader::with_target(src, 0, spec, target).unwrap();
+        let mut r = ChunkReader::with_target(src, 0, spec, LabelMode::Required, target).unwrap();
         let mut out = Vec::new();
         let mut seq = 0;
         while let Some(c) = r.next_chunk(seq).unwrap() {

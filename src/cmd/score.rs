@@ -1,0 +1,226 @@
+//! `tamis score`: predicted label and score for every input record.
+
+use std::io::{BufWriter, Write};
+use std::path::PathBuf;
+use std::process::ExitCode;
+
+use anyhow::Context;
+use tamis::input::{Format, InputSpec, LabelMode};
+use tamis::model::Model;
+use tamis::score::{self, Outcome};
+
+/// Output formats of `tamis score`.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum)]
+pub enum OutputFormat {
+    /// `WHERE<TAB>LABEL<TAB>SCORE[<TAB>PROBABILITY]`, or `WHERE<TAB>!skipped<TAB>REASON: DETAIL`.
+    Tsv,
+    /// One JSON object per record with `where`, `label`, `score` (and `probability`), or `where`, `skipped`, `detail`.
+    Jsonl,
+}
+
+/// Options of `tamis score`.
+#[derive(Debug, clap::Args)]
+pub struct Args {
+    /// Model file written by `tamis train`.
+    #[arg(value_name = "MODEL")]
+    pub model: PathBuf,
+
+    /// Inputs in the training data's format (a label, if present, is ignored);
+    /// `-` or nothing reads standard input.
+    #[arg(value_name = "INPUT")]
+    pub inputs: Vec<String>,
+
+    /// Record format [default: the one the model was trained on].
+    #[arg(long, value_enum)]
+    pub format: Option<Format>,
+
+    /// CSV column or JSON field with the label, if any [default: the model's].
+    #[arg(
+        long = "label-column",
+        visible_alias = "label-field",
+        value_name = "NAME"
+    )]
+    pub label: Option<String>,
+
+    /// CSV columns or JSON fields with text, in the model's order [default: the model's].
+    #[arg(
+        long = "text-column",
+        visible_alias = "text-field",
+        value_name = "NAME"
+    )]
+    pub text: Vec<String>,
+
+    /// CSV columns or JSON fields with numbers [default: the model's].
+    #[arg(
+        long = "numeric-field",
+        visible_alias = "numeric-column",
+        value_name = "NAME"
+    )]
+    pub numeric: Vec<String>,
+
+    /// Output format.
+    #[arg(long, value_enum, default_value_t = OutputFormat::Tsv)]
+    pub output_format: OutputFormat,
+
+    /// Records longer than this many bytes are reported as skipped.
+    #[arg(long, value_name = "BYTES", default_value_t = 1 << 20)]
+    pub max_line_bytes: usize,
+
+    /// Threads [default: all cores]; the output order is the input order regardless.
+    #[arg(long, short = 'j', value_name = "N")]
+    pub threads: Option<usize>,
+
+    /// Do not print the summary line on standard error.
+    #[arg(long, short = 'q')]
+    pub quiet: bool,
+}
+
+/// The input specification: the model's, with any field given on the command line
+/// replacing it.
+pub fn spec_for(
+    model: &Model,
+    format: Option<Format>,
+    label: &Option<String>,
+    text: &[String],
+    numeric: &[String],
+    max_line_bytes: usize,
+) -> InputSpec {
+    let mut spec = model.meta.input.clone();
+    if let Some(f) = format {
+        if f != spec.format {
+            spec.format = f;
+            if f == Format::Tsv {
+                spec = InputSpec::tsv(max_line_bytes);
+            }
+        }
+    }
+    if let Some(l) = label {
+        spec.label = l.clone();
+    }
+    if !text.is_empty() {
+        spec.text = text.to_vec();
+    }
+    if !numeric.is_empty() {
+        spec.numeric = numeric.to_vec();
+    }
+    spec.max_line_bytes = max_line_bytes;
+    spec
+}
+
+fn json_str(s: &str) -> String {
+    serde_json::to_string(s).expect("strings serialise")
+}
+
+/// Run `tamis score`.
+pub fn run(a: Args) -> anyhow::Result<ExitCode> {
+    let model = Model::load(&a.model)
+        .with_context(|| format!("cannot load model {}", a.model.display()))?;
+    let spec = spec_for(
+        &model,
+        a.format,
+        &a.label,
+        &a.text,
+        &a.numeric,
+        a.max_line_bytes,
+    );
+    let inputs = if a.inputs.is_empty() {
+        vec!["-".to_string()]
+    } else {
+        a.inputs.clone()
+    };
+    let names: Vec<String> = inputs
+        .iter()
+        .map(|p| if p == "-" { "stdin".into() } else { p.clone() })
+        .collect();
+    let several = inputs.len() > 1;
+    let stdout = std::io::stdout();
+    let mut out = BufWriter::with_capacity(1 << 16, stdout.lock());
+    let (mut scored, mut skipped) = (0u64, 0u64);
+    let threads = a.threads.unwrap_or_else(super::default_threads);
+    let mut io_err: Option<std::io::Error> = None;
+    let r = score::score_inputs(
+        &model,
+        &inputs,
+        &spec,
+        LabelMode::Optional,
+        threads,
+        |outs| {
+            for o in outs {
+                let (input, line) = match &o {
+                    Outcome::Scored { input, line, .. } | Outcome::Skipped { input, line, .. } => {
+                        (*input, *line)
+                    }
+                };
+                let place = if several {
+                    format!("{}:{line}", names[input])
+                } else {
+                    line.to_string()
+                };
+                let w = match (&o, a.output_format) {
+                    (
+                        Outcome::Scored {
+                            label,
+                            score,
+                            probability,
+                            ..
+                        },
+                        OutputFormat::Tsv,
+                    ) => {
+                        scored += 1;
+                        match probability {
+                            Some(p) => writeln!(out, "{place}\t{label}\t{score:.6}\t{p:.6}"),
+                            None => writeln!(out, "{place}\t{label}\t{score:.6}"),
+                        }
+                    }
+                    (
+                        Outcome::Scored {
+                            label,
+                            score,
+                            probability,
+                            ..
+                        },
+                        OutputFormat::Jsonl,
+                    ) => {
+                        scored += 1;
+                        match probability {
+                        Some(p) => writeln!(out, "{{\"where\":{},\"label\":{},\"score\":{score:.6},\"probability\":{p:.6}}}", json_str(&place), json_str(label)),
+                        None => writeln!(out, "{{\"where\":{},\"label\":{},\"score\":{score:.6}}}", json_str(&place), json_str(label)),
+                    }
+                    }
+                    (Outcome::Skipped { reason, detail, .. }, OutputFormat::Tsv) => {
+                        skipped += 1;
+                        writeln!(
+                            out,
+                            "{place}\t!skipped\t{reason}: {}",
+                            detail.replace(['\t', '\n'], " ")
+                        )
+                    }
+                    (Outcome::Skipped { reason, detail, .. }, OutputFormat::Jsonl) => {
+                        skipped += 1;
+                        writeln!(
+                            out,
+                            "{{\"where\":{},\"skipped\":{},\"detail\":{}}}",
+                            json_str(&place),
+                            json_str(reason.key()),
+                            json_str(detail)
+                        )
+                    }
+                };
+                if let Err(e) = w {
+                    io_err = Some(e);
+                    return Err(tamis::Error::Invalid("output closed".into()));
+                }
+            }
+            Ok(())
+        },
+    );
+    if let Some(e) = io_err {
+        return Err(anyhow::Error::new(e).context("cannot write the scores"));
+    }
+    r?;
+    out.flush().context("cannot write the scores")?;
+    if !a.quiet {
+        eprintln!("scored {scored} records, skipped {skipped}");
+    }
+    Ok(ExitCode::SUCCESS)
+}
