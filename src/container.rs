@@ -213,6 +213,14 @@ impl Header {
             });
         }
         let file_len = u64_at(bytes, 24);
+        if (bytes.len() as u64) < header_len(n) {
+            return Err(Error::Size {
+                path: p(),
+                what: "padded header".into(),
+                expected: header_len(n),
+                got: bytes.len() as u64,
+            });
+        }
         if file_len != bytes.len() as u64 {
             return Err(Error::Size {
                 path: p(),

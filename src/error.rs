@@ -9,13 +9,12 @@ use std::path::PathBuf;
 #[derive(Debug, thiserror::Error)]
 pub enum Error {
     /// An operating-system error while reading, writing or renaming a file.
-    #[error("{path}: {source}")]
+    #[error("{path}: {cause}")]
     Io {
         /// The file or folder concerned.
         path: PathBuf,
-        /// The underlying error.
-        #[source]
-        source: std::io::Error,
+        /// The underlying error (part of the message, so not repeated as a source).
+        cause: std::io::Error,
     },
 
     /// A file does not start with the magic bytes of the kind expected.
@@ -115,9 +114,9 @@ pub(crate) trait IoContext<T> {
 
 impl<T> IoContext<T> for std::io::Result<T> {
     fn at(self, path: impl Into<PathBuf>) -> Result<T> {
-        self.map_err(|source| Error::Io {
+        self.map_err(|cause| Error::Io {
             path: path.into(),
-            source,
+            cause,
         })
     }
 }

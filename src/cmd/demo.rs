@@ -36,7 +36,7 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
     std::fs::create_dir_all(&a.dir)
         .with_context(|| format!("cannot create {}", a.dir.display()))?;
     let inbox = a.dir.join("inbox.tsv");
-    println!(
+    outln!(
         "1. generating {} invented messages to the Quillmere Ferry Cooperative's inbox → {}",
         a.rows,
         inbox.display()
@@ -53,7 +53,7 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
         std::io::Write::flush(&mut w)?;
     }
     let data = a.dir.join("dataset");
-    println!("2. ingesting into {}", data.display());
+    outln!("2. ingesting into {}", data.display());
     let opts = IngestOptions {
         inputs: vec![inbox.to_string_lossy().into_owned()],
         out: data.clone(),
@@ -66,13 +66,13 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
         progress: true,
     };
     let summary = dataset::ingest(&opts, super::stderr_log(false))?;
-    println!("   {}", summary.line());
-    println!("3. the dataset:");
+    outln!("   {}", summary.line());
+    outln!("3. the dataset:");
     let s = dataset::stats(&data)?;
     super::stats::print(&s, false, &mut std::io::stdout().lock())?;
-    println!();
+    outln!();
     let model = a.dir.join("inbox.tmm");
-    println!(
+    outln!(
         "4. training a one-vs-rest hinge model → {}",
         model.display()
     );
@@ -95,9 +95,15 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
         threads: opts.threads,
         progress: true,
     };
-    train::train(&topts, std::sync::Arc::new(|s: &str| println!("   {s}")))?;
-    println!();
-    println!("5. evaluating on the validation split:");
+    train::train(
+        &topts,
+        std::sync::Arc::new(|s: &str| {
+            use std::io::Write as _;
+            let _ = writeln!(std::io::stdout(), "   {s}");
+        }),
+    )?;
+    outln!();
+    outln!("5. evaluating on the validation split:");
     super::eval::run(super::eval::Args {
         model: model.clone(),
         data: vec![data.to_string_lossy().into_owned()],
@@ -111,8 +117,8 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
     })?;
     let examples = a.dir.join("examples.txt");
     std::fs::write(&examples, EXAMPLES)?;
-    println!();
-    println!("6. scoring a few new messages ({}):", examples.display());
+    outln!();
+    outln!("6. scoring a few new messages ({}):", examples.display());
     let loaded = tamis::model::Model::load(&model)?;
     let lines: Vec<&str> = EXAMPLES.lines().collect();
     tamis::score::score_inputs(
@@ -127,20 +133,25 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
                     line, label, score, ..
                 } = o
                 {
-                    println!("   {label:<14} {score:>7.3}  {}", lines[line as usize - 1]);
+                    use std::io::Write as _;
+                    let _ = writeln!(
+                        std::io::stdout(),
+                        "   {label:<14} {score:>7.3}  {}",
+                        lines[line as usize - 1]
+                    );
                 }
             }
             Ok(())
         },
     )?;
-    println!();
-    println!(
+    outln!();
+    outln!(
         "files: {} (messages), {} (dataset), {} (model)",
         inbox.display(),
         data.display(),
         model.display()
     );
-    println!(
+    outln!(
         "next: `tamis score {m} FILE`, `tamis eval {m} {d}`, `tamis stats {d}`",
         m = model.display(),
         d = data.display()

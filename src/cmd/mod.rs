@@ -1,5 +1,14 @@
 //! Subcommands, one file each. Each has its own `Args` and a `run`.
 
+/// `println!` that returns an error instead of panicking when standard output
+/// is closed (the caller's `?` turns a broken pipe into a quiet exit).
+macro_rules! outln {
+    ($($t:tt)*) => {{
+        use std::io::Write as _;
+        writeln!(std::io::stdout(), $($t)*)?
+    }};
+}
+
 pub mod demo;
 pub mod eval;
 pub mod ingest;

@@ -26,7 +26,7 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
             eprintln!("damaged: {e}");
         }
         if r.problems.is_empty() {
-            println!(
+            outln!(
                 "ok: {} files ({} of shards) in {} verified",
                 r.checked,
                 bytes(r.bytes),
@@ -46,7 +46,7 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
         Some((Kind::Shard, _)) => {
             let s = Shard::read(p)?;
             s.verify(None)?;
-            println!(
+            outln!(
                 "ok: shard {} ({} rows, {} nonzeros)",
                 p.display(),
                 thousands(s.rows() as u64),
@@ -55,7 +55,7 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
         }
         Some((Kind::DocFreq, _)) => {
             dataset::docfreq::DocFreq::open(p, true)?;
-            println!("ok: document frequencies {}", p.display());
+            outln!("ok: document frequencies {}", p.display());
         }
         Some((k, _)) => bail!(
             "{}: verifying {} files is not supported by this build",
@@ -67,7 +67,7 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
             .is_some_and(|n| n == dataset::manifest::MANIFEST_FILE) =>
         {
             dataset::Manifest::from_bytes(&head, p)?;
-            println!(
+            outln!(
                 "ok: manifest {} (pass the folder to check its files too)",
                 p.display()
             );

@@ -198,10 +198,16 @@ impl Manifest {
         };
         let at = find_sum(bytes)
             .ok_or_else(|| corrupt("not a tamis manifest (no checksum key at the start)".into()))?;
-        let stored = std::str::from_utf8(&bytes[at..at + 16])
+        let digits = &bytes[at..at + 16];
+        let stored = std::str::from_utf8(digits)
             .ok()
+            .filter(|_| {
+                digits
+                    .iter()
+                    .all(|b| b.is_ascii_digit() || (b'a'..=b'f').contains(b))
+            })
             .and_then(|s| u64::from_str_radix(s, 16).ok())
-            .ok_or_else(|| corrupt("checksum is not 16 hex digits".into()))?;
+            .ok_or_else(|| corrupt("checksum is not 16 lowercase hex digits".into()))?;
         let mut zeroed = bytes.to_vec();
         zeroed[at..at + 16].copy_from_slice(ZERO_SUM.as_bytes());
         let got = xxh3_64(&zeroed);

@@ -498,6 +498,10 @@ impl Featurizer {
             );
             out.extend_from_slice(&self.numeric);
             merge(out);
+            // Colliding numeric features could sum beyond the f32 range.
+            for e in out.iter_mut() {
+                e.1 = e.1.clamp(-f32::MAX, f32::MAX);
+            }
             indices.truncate(start);
             values.truncate(start);
             for &(b, v) in out.iter() {

@@ -341,7 +341,7 @@ impl ChunkReader {
                 Err(e) => {
                     return Err(Error::Io {
                         path: self.path(),
-                        source: e,
+                        cause: e,
                     })
                 }
             }
@@ -364,16 +364,7 @@ impl ChunkReader {
         if self.spec.format != Format::Csv {
             return (memchr::memrchr(b'\n', buf).map(|p| p + 1), false);
         }
-        let mut quoted = false;
-        let mut last = None;
-        for p in memchr::memchr2_iter(b'"', b'\n', buf) {
-            if buf[p] == b'"' {
-                quoted = !quoted;
-            } else if !quoted {
-                last = Some(p + 1);
-            }
-        }
-        (last, quoted)
+        csv_boundaries(buf, false)
     }
 
     fn read_csv_header(&mut self) -> Result<()> {
@@ -415,15 +406,7 @@ impl ChunkReader {
     }
 
     fn first_csv_boundary(&self) -> (Option<usize>, bool) {
-        let mut quoted = false;
-        for p in memchr::memchr2_iter(b'"', b'\n', &self.carry) {
-            if self.carry[p] == b'"' {
-                quoted = !quoted;
-            } else if !quoted {
-                return (Some(p + 1), false);
-            }
-        }
-        (None, quoted)
+        csv_boundaries(&self.carry, true)
     }
 
     /// The next chunk, or `None` at the end of the input. `seq` is the sequence
@@ -499,6 +482,53 @@ impl ChunkReader {
             columns: self.columns.clone(),
         })
     }
+}
+
+/// Record boundaries of CSV bytes that start at a record boundary: the end
+/// (exclusive) of the last complete record (or of the first, with `first`), and
+/// whether the bytes end inside a quoted field.
+///
+/// A quote opens a quoted field only at the start of a field (RFC 4180, 2.5); a
+/// stray quote inside an unquoted field is literal, so it cannot shift the
+/// boundaries of the records after it.
+fn csv_boundaries(buf: &[u8], first: bool) -> (Option<usize>, bool) {
+    #[derive(PartialEq)]
+    enum St {
+        FieldStart,
+        Unquoted,
+        Quoted,
+        QuoteInQuoted,
+    }
+    let mut st = St::FieldStart;
+    let mut last = None;
+    let mut pos = 0;
+    for p in memchr::memchr3_iter(b'"', b',', b'\n', buf) {
+        if p > pos {
+            // Ordinary bytes between the special ones.
+            st = match st {
+                St::FieldStart | St::QuoteInQuoted => St::Unquoted,
+                other => other,
+            };
+        }
+        pos = p + 1;
+        st = match (st, buf[p]) {
+            (St::Quoted, b'"') => St::QuoteInQuoted,
+            (St::Quoted, _) => St::Quoted,
+            (St::QuoteInQuoted, b'"') => St::Quoted,
+            (St::FieldStart, b'"') => St::Quoted,
+            (St::Unquoted, b'"') => St::Unquoted,
+            (_, b',') => St::FieldStart,
+            (_, _) => {
+                // A newline outside quotes ends a record.
+                last = Some(p + 1);
+                if first {
+                    return (last, false);
+                }
+                St::FieldStart
+            }
+        };
+    }
+    (last, st == St::Quoted)
 }
 
 /// A message from [`read_inputs`].

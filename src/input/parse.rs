@@ -322,7 +322,11 @@ fn parse_number(b: &[u8]) -> Option<f64> {
     if s.is_empty() {
         return None;
     }
-    s.parse::<f64>().ok().filter(|v| v.is_finite())
+    // Values are stored as f32: anything beyond its range is refused, not
+    // turned into an infinity.
+    s.parse::<f64>()
+        .ok()
+        .filter(|v| v.is_finite() && v.abs() <= f32::MAX as f64)
 }
 
 /// Whether a raw CSV record follows RFC 4180 quoting: a field is either free of
@@ -369,6 +373,17 @@ fn rfc4180_ok(raw: &[u8]) -> bool {
     }
 }
 
+/// Blank lines in a run of CR and LF bytes before a record; `after_cr` says the
+/// byte before the run was a CR, so a leading LF completes that CRLF.
+fn blank_lines(run: &[u8], after_cr: bool) -> u64 {
+    let n = run.iter().filter(|&&b| b == b'\n').count() as u64;
+    if after_cr && run.first() == Some(&b'\n') {
+        n - 1
+    } else {
+        n
+    }
+}
+
 fn csv_records(
     chunk: &Chunk,
     spec: &InputSpec,
@@ -387,15 +402,19 @@ fn csv_records(
         .from_reader(data);
     let mut rec = csv::ByteRecord::new();
     let mut numbers = [None; MAX_FIELDS];
+    // Line numbers are counted here from the bytes (the reader's own count lags
+    // behind after a CRLF ending): `line_at` is the line of byte `counted`.
+    let mut counted = 0usize;
+    let mut line_at = chunk.first_line;
     loop {
-        let start = r.position().byte() as usize;
-        let line = chunk.first_line + r.position().line().saturating_sub(1);
+        let start = (r.position().byte() as usize).min(data.len());
         let more = match r.read_byte_record(&mut rec) {
             Ok(m) => m,
             Err(e) => {
+                line_at += memchr::memchr_iter(b'\n', &data[counted..start]).count() as u64;
                 bad(BadLine {
                     reason: BadReason::BadCsv,
-                    line,
+                    line: line_at,
                     detail: e.to_string(),
                 });
                 // The reader cannot resume reliably after an error.
@@ -403,23 +422,31 @@ fn csv_records(
             }
         };
         if !more {
+            // Blank lines at the end of the chunk.
+            let tail = &data[start.max(counted)..];
+            counts.blank += blank_lines(tail, start > 0 && data[start - 1] == b'\r');
             return;
         }
         let end = (r.position().byte() as usize).min(data.len());
-        let raw = trim_cr(
-            data[start..end]
-                .strip_suffix(b"\n")
-                .unwrap_or(&data[start..end]),
-        );
-        // The csv crate skips blank lines; count them from the gap.
-        let skipped_blank = data[start..end]
+        let whole = &data[start..end];
+        // The reader skips blank lines before a record; the LF of a CRLF that
+        // ended the previous record may also lead the range.
+        let lead = whole
             .iter()
             .take_while(|&&b| b == b'\n' || b == b'\r')
-            .filter(|&&b| b == b'\n')
             .count();
-        counts.blank += skipped_blank as u64;
-        let raw = raw.trim_ascii_start();
-        let line = line + skipped_blank as u64;
+        counts.blank += blank_lines(&whole[..lead], start > 0 && data[start - 1] == b'\r');
+        let content = start + lead;
+        line_at += memchr::memchr_iter(b'\n', &data[counted..content]).count() as u64;
+        counted = content;
+        let line = line_at;
+        let raw = trim_cr(
+            data[content..end]
+                .strip_suffix(b"\n")
+                .unwrap_or(&data[content..end]),
+        )
+        .trim_ascii_start();
+
         if raw.len() > spec.max_line_bytes {
             bad(BadLine {
                 reason: BadReason::TooLong,
@@ -652,7 +679,9 @@ impl<'de> Visitor<'de> for RowSeed<'_> {
                 }
                 Key::Number(i) => {
                     self.row.numbers[i] = match m.next_value_seed(ScalarSeed)? {
-                        Scalar::Number(v, _) if v.is_finite() => Some(v),
+                        Scalar::Number(v, _) if v.is_finite() && v.abs() <= f32::MAX as f64 => {
+                            Some(v)
+                        }
                         Scalar::Text(s) => match parse_number(s.as_bytes()) {
                             Some(v) => Some(v),
                             None => {

@@ -56,11 +56,15 @@ pub struct EpochLog {
     pub validation_accuracy: Option<f64>,
     /// Macro-averaged F1 on the validation split (multiclass), if there is one.
     pub validation_macro_f1: Option<f64>,
-    /// Rows per second in this epoch.
+    /// Rows per second in this epoch (printed, not stored: the model file must
+    /// not depend on timing).
+    #[serde(skip)]
     pub rows_per_second: f64,
-    /// Nonzeros per second in this epoch.
+    /// Nonzeros per second in this epoch (printed, not stored).
+    #[serde(skip)]
     pub nnz_per_second: f64,
-    /// Seconds spent on this epoch (training and validation).
+    /// Seconds spent on this epoch, training and validation (printed, not stored).
+    #[serde(skip)]
     pub seconds: f64,
 }
 

@@ -136,10 +136,10 @@ impl<B: AsRef<[u8]>> Shard<B> {
         want("values", values, nnz, 4)?;
         want("indptr", indptr, rows.saturating_add(1), 8)?;
         want("labels", labels, rows, 4)?;
-        if cols == 0 || cols > u32::MAX as u64 + 1 {
+        if !cols.is_power_of_two() || cols > 1 << 31 {
             return Err(Error::Corrupt {
                 path: p(),
-                what: format!("column count {cols} out of range"),
+                what: format!("column count {cols} is not a power of two up to 2^31"),
             });
         }
         let shard = Shard {
@@ -468,6 +468,11 @@ impl ShardWriter {
 
     /// Start a shard with room for `nnz_capacity` nonzeros.
     pub fn with_capacity(dest: &Path, cols: u64, nnz_capacity: u64) -> Result<Self> {
+        if !cols.is_power_of_two() || cols > 1 << 31 {
+            return Err(Error::Invalid(format!(
+                "a shard needs a power-of-two column count up to 2^31, not {cols}"
+            )));
+        }
         let mut file = AtomicFile::create(dest)?;
         let tmp = file.tmp_path().to_path_buf();
         let handle = file.file().try_clone().at(&tmp)?;

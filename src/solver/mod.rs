@@ -7,10 +7,13 @@
 //! F(w, b) = λ/2·‖w‖² + (1/n)·Σᵢ cᵢ·loss(yᵢ(w·xᵢ + b)),   b unregularised
 //! ```
 //!
-//! Step `t` (one mini-batch `Bₜ` of size `k`) with `ηₜ = 1/(λ(t + t₀))`
-//! (Shalev-Shwartz, Singer, Srebro, Cotter 2011, "Pegasos", with an offset
-//! `t₀ = max(1, 1/(λ·η₀))` so the first step is `η₀` rather than `1/λ` and the
-//! first factor `1 − η₁λ` is never 0):
+//! Step `t = 0, 1, …` (one mini-batch `Bₜ` of size `k`) with `ηₜ = 1/(λ(t + t₀))`
+//! (Shalev-Shwartz, Singer, Srebro, Cotter 2011, "Pegasos"). The offset is
+//! `t₀ = max(1, 1/(λ·η₀·k))`: the first step is `k·η₀` on the mean gradient of the
+//! batch, which moves as far as `k` single steps of `η₀` (the linear scaling of
+//! step size with batch size, common practice), so an epoch makes the same
+//! progress whatever the batch size; and `t₀ ≥ 1` keeps the first factor
+//! `1 − η₀λ` away from 0:
 //!
 //! ```text
 //! w ← (1 − ηₜλ)·w − (ηₜ/k)·Σ_{i∈Bₜ} cᵢ·loss'(mᵢ)·yᵢ·xᵢ        mᵢ = yᵢ(w·xᵢ + b)
@@ -210,9 +213,14 @@ impl SolverConfig {
         Ok(())
     }
 
-    /// The step offset t₀.
+    /// The step offset t₀ = max(1, 1/(λ·η₀·batch)).
     pub fn t0(&self) -> f64 {
-        (1.0 / (self.lambda * self.eta0)).max(1.0)
+        (1.0 / (self.lambda * self.eta0 * self.batch as f64)).max(1.0)
+    }
+
+    /// The step size of step `t` (from 0).
+    pub fn eta(&self, t: u64) -> f64 {
+        1.0 / (self.lambda * (t as f64 + self.t0()))
     }
 }
 
@@ -287,7 +295,9 @@ impl Linear {
 
     /// Take one step: shrink by `1 − ηλ`, add `−η/k · Σ coef_i x_i` where
     /// `coef_i = cᵢ·loss'(mᵢ)·yᵢ` (zero entries skipped), update the bias and
-    /// the average.
+    /// the average. With `splits` (per row, the offsets where its indices enter
+    /// each of [`RANGES`] equal slices of the dimension), the slices are updated
+    /// in parallel; the result does not depend on the number of threads.
     #[allow(clippy::too_many_arguments)]
     fn step<R: Rows + ?Sized>(
         &mut self,
@@ -298,37 +308,71 @@ impl Linear {
         eta: f64,
         cfg: &SolverConfig,
         average: bool,
+        splits: Option<&[[u32; RANGES + 1]]>,
     ) {
         let k = batch.len() as f64;
         self.s *= 1.0 - eta * cfg.lambda;
         if self.s < RENORM_BELOW {
             self.renormalize();
         }
-        let mask = self.v.len() - 1;
         let scale = eta / (k * self.s);
-        let mut bias_grad = 0.0;
         let big_b = if average { self.big_b } else { 0.0 };
-        for (&r, &c) in batch.iter().zip(coefs) {
-            if c == 0.0 {
-                continue;
-            }
-            bias_grad += c;
-            let x = rows.row(r);
-            let f = -scale * c;
-            for (&i, &val) in x.indices.iter().zip(x.values) {
-                let j = i as usize & mask;
-                let xv = match idf {
-                    Some(idf) => (val * idf[j]) as f64,
-                    None => val as f64,
-                };
-                let d = f * xv;
-                let old = self.v[j];
-                let new = old + d;
-                self.vnorm2 += new * new - old * old;
-                self.v[j] = new;
-                if big_b != 0.0 {
-                    self.u[j] -= big_b * d;
+        let bias_grad: f64 = coefs.iter().sum();
+        let mask = self.v.len() - 1;
+        match splits {
+            None => {
+                let mut dn = 0.0;
+                for (&r, &c) in batch.iter().zip(coefs) {
+                    if c == 0.0 {
+                        continue;
+                    }
+                    let x = rows.row(r);
+                    dn += apply(
+                        &mut self.v,
+                        &mut self.u,
+                        mask,
+                        0,
+                        mask,
+                        &x,
+                        0..x.indices.len(),
+                        -scale * c,
+                        big_b,
+                        idf,
+                    );
                 }
+                self.vnorm2 += dn;
+            }
+            Some(splits) => {
+                let width = self.v.len() / RANGES;
+                let parts: Vec<f64> = self
+                    .v
+                    .par_chunks_mut(width)
+                    .zip(self.u.par_chunks_mut(width))
+                    .enumerate()
+                    .map(|(q, (v, u))| {
+                        let mut dn = 0.0;
+                        for ((&r, &c), sp) in batch.iter().zip(coefs).zip(splits) {
+                            if c == 0.0 || sp[q] == sp[q + 1] {
+                                continue;
+                            }
+                            let x = rows.row(r);
+                            dn += apply(
+                                v,
+                                u,
+                                mask,
+                                q * width,
+                                width - 1,
+                                &x,
+                                sp[q] as usize..sp[q + 1] as usize,
+                                -scale * c,
+                                big_b,
+                                idf,
+                            );
+                        }
+                        dn
+                    })
+                    .collect();
+                self.vnorm2 += parts.iter().sum::<f64>();
             }
         }
         self.b -= eta / k * bias_grad;
@@ -390,6 +434,50 @@ impl Linear {
     }
 }
 
+/// Slices of the dimension updated in parallel by a binary model's step (fixed,
+/// so results do not depend on the number of threads).
+pub const RANGES: usize = 8;
+/// Batches at least this large take the parallel path.
+pub const PARALLEL_BATCH: usize = 64;
+
+/// Add `f·x` over the entries `span` of row `x` to the slice `v` (covering
+/// features `base..base+mask+1` of a dimension with mask `dim_mask`), and
+/// `−big_b·f·x` to `u`; returns the change of ‖v‖². Indices are masked, so a
+/// damaged row cannot index out of bounds.
+#[allow(clippy::too_many_arguments)]
+#[inline]
+fn apply(
+    v: &mut [f64],
+    u: &mut [f64],
+    dim_mask: usize,
+    base: usize,
+    mask: usize,
+    x: &Row<'_>,
+    span: std::ops::Range<usize>,
+    f: f64,
+    big_b: f64,
+    idf: Option<&[f32]>,
+) -> f64 {
+    let mut dn = 0.0;
+    for (&i, &val) in x.indices[span.clone()].iter().zip(&x.values[span]) {
+        let g = i as usize & dim_mask;
+        let j = g.wrapping_sub(base) & mask;
+        let xv = match idf {
+            Some(idf) => (val * idf[g]) as f64,
+            None => val as f64,
+        };
+        let d = f * xv;
+        let old = v[j];
+        let new = old + d;
+        dn += new * new - old * old;
+        v[j] = new;
+        if big_b != 0.0 {
+            u[j] -= big_b * d;
+        }
+    }
+    dn
+}
+
 /// The binary targets of a model: which class ids count as positive.
 #[derive(Debug, Clone, PartialEq)]
 pub enum Target {
@@ -427,6 +515,7 @@ pub struct Trainer {
     idf: Option<Vec<f32>>,
     coefs: Vec<Vec<f64>>,
     margins: Vec<f64>,
+    splits: Vec<[u32; RANGES + 1]>,
 }
 
 /// Sums gathered while training on a batch or evaluating a set.
@@ -464,6 +553,7 @@ impl Trainer {
             t: 0,
             idf,
             margins: Vec::new(),
+            splits: Vec::new(),
         })
     }
 
@@ -486,7 +576,7 @@ impl Trainer {
     /// number of threads.
     pub fn step<R: Rows + ?Sized>(&mut self, rows: &R, batch: &[usize], average: bool) -> Tally {
         self.t += 1;
-        let eta = 1.0 / (self.cfg.lambda * (self.t as f64 - 1.0 + self.cfg.t0()));
+        let eta = self.cfg.eta(self.t - 1);
         let cfg = &self.cfg;
         let idf = self.idf.as_deref();
         let weights = &self.class_weights;
@@ -499,15 +589,43 @@ impl Trainer {
             .map(|&r| rows.row(r).indices.len() as u64)
             .sum();
         let losses: Vec<f64> = if self.models.len() == 1 {
-            // Binary: rows in parallel for the margins, then one update.
+            // Binary: rows in parallel for the margins (and where each row's
+            // indices enter each slice of the dimension), then slices in parallel.
             let m = &self.models[0];
             let target = &self.targets[0];
+            let parallel = batch.len() >= PARALLEL_BATCH;
+            let dim = m.dim();
             self.margins.clear();
-            batch
-                .par_iter()
-                .with_min_len(256)
-                .map(|&r| m.margin(&rows.row(r), idf))
-                .collect_into_vec(&mut self.margins);
+            self.splits.clear();
+            if parallel {
+                let width = (dim / RANGES) as u32;
+                batch
+                    .par_iter()
+                    .with_min_len(32)
+                    .map(|&r| {
+                        let x = rows.row(r);
+                        let mut sp = [0u32; RANGES + 1];
+                        for (q, slot) in sp.iter_mut().enumerate().skip(1) {
+                            let lim = q as u32 * width;
+                            *slot =
+                                x.indices.partition_point(|&i| (i & (dim as u32 - 1)) < lim) as u32;
+                        }
+                        (m.margin(&x, idf), sp)
+                    })
+                    .unzip_into_vecs(&mut self.margins, &mut self.splits);
+                // Rows of a damaged shard may have unmasked indices out of order;
+                // the split offsets must still be monotone and end at the row.
+                for (sp, &r) in self.splits.iter_mut().zip(batch) {
+                    let n = rows.row(r).indices.len() as u32;
+                    sp[RANGES] = n;
+                    for q in 1..RANGES {
+                        sp[q] = sp[q].max(sp[q - 1]).min(n);
+                    }
+                }
+            } else {
+                self.margins
+                    .extend(batch.iter().map(|&r| m.margin(&rows.row(r), idf)));
+            }
             let coefs = &mut self.coefs[0];
             coefs.clear();
             let mut loss = 0.0;
@@ -518,7 +636,8 @@ impl Trainer {
                 loss += c * cfg.loss.value(y * mg);
                 coefs.push(c * cfg.loss.derivative(y * mg) * y);
             }
-            self.models[0].step(rows, batch, coefs, idf, eta, cfg, average);
+            let splits = parallel.then_some(&self.splits[..]);
+            self.models[0].step(rows, batch, coefs, idf, eta, cfg, average, splits);
             vec![loss]
         } else {
             // One-vs-rest: models in parallel, each over the whole batch.
@@ -537,7 +656,7 @@ impl Trainer {
                         loss += c * cfg.loss.value(mg);
                         coefs.push(c * cfg.loss.derivative(mg) * y);
                     }
-                    m.step(rows, batch, coefs, idf, eta, cfg, average);
+                    m.step(rows, batch, coefs, idf, eta, cfg, average, None);
                     loss
                 })
                 .collect()
@@ -672,7 +791,7 @@ mod tests {
         let order: Vec<usize> = (0..rows.len()).collect();
         for (t, batch) in order.chunks(3).enumerate() {
             let average = t >= 20;
-            let eta = 1.0 / (c.lambda * (t as f64 + c.t0()));
+            let eta = c.eta(t as u64);
             let mut g = vec![0.0; dim];
             let mut gb = 0.0;
             for &r in batch {

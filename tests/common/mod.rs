@@ -1,0 +1,470 @@
+//! Helpers shared by the end-to-end tests: temporary folders, running the built
+//! `tamis` binary, reading datasets back with the library.
+//!
+//! Every test file uses a different subset of these helpers.
+#![allow(dead_code)]
+
+use std::collections::{BTreeMap, BTreeSet};
+use std::io::Write;
+use std::path::{Path, PathBuf};
+use std::process::{Command, Stdio};
+
+use tamis::dataset::{Manifest, Split};
+use tamis::shard::Shard;
+
+/// Path of a file in `fixtures/`.
+pub fn fixture(name: &str) -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("fixtures")
+        .join(name)
+}
+
+/// The bytes of a fixture.
+pub fn fixture_bytes(name: &str) -> Vec<u8> {
+    std::fs::read(fixture(name)).unwrap_or_else(|e| panic!("fixture {name}: {e}"))
+}
+
+/// A fresh temporary folder, removed when dropped.
+pub fn tmp() -> tempfile::TempDir {
+    tempfile::Builder::new()
+        .prefix("tamis-e2e-")
+        .tempdir()
+        .expect("temporary folder")
+}
+
+/// The built binary.
+pub fn bin() -> &'static str {
+    env!("CARGO_BIN_EXE_tamis")
+}
+
+/// Outcome of one run of the binary.
+#[derive(Debug)]
+pub struct Out {
+    /// The command line, for messages.
+    pub args: Vec<String>,
+    /// Exit code (`None` when killed by a signal).
+    pub code: Option<i32>,
+    /// Standard output.
+    pub stdout: String,
+    /// Standard error.
+    pub stderr: String,
+}
+
+impl Out {
+    fn describe(&self) -> String {
+        format!(
+            "tamis {}\nexit {:?}\n--- stdout\n{}\n--- stderr\n{}",
+            self.args.join(" "),
+            self.code,
+            self.stdout,
+            self.stderr
+        )
+    }
+
+    /// Assert exit status 0.
+    #[track_caller]
+    pub fn ok(&self) -> &Self {
+        assert_eq!(self.code, Some(0), "expected success:\n{}", self.describe());
+        self
+    }
+
+    /// Assert a clean failure: exit status 1 (an error reported with `error:`),
+    /// not a panic (101), a signal or a usage error (2).
+    #[track_caller]
+    pub fn fails(&self) -> &Self {
+        assert_eq!(self.code, Some(1), "expected exit 1:\n{}", self.describe());
+        assert!(
+            self.stderr.contains("error:"),
+            "no `error:` line:\n{}",
+            self.describe()
+        );
+        assert!(
+            !self.stderr.contains("panicked"),
+            "panicked:\n{}",
+            self.describe()
+        );
+        self
+    }
+
+    /// Assert that standard error contains `needle`.
+    #[track_caller]
+    pub fn stderr_has(&self, needle: &str) -> &Self {
+        assert!(
+            self.stderr.contains(needle),
+            "stderr lacks {needle:?}:\n{}",
+            self.describe()
+        );
+        self
+    }
+
+    /// Assert that standard output contains `needle`.
+    #[track_caller]
+    pub fn stdout_has(&self, needle: &str) -> &Self {
+        assert!(
+            self.stdout.contains(needle),
+            "stdout lacks {needle:?}:\n{}",
+            self.describe()
+        );
+        self
+    }
+}
+
+fn to_strings<I, S>(args: I) -> Vec<String>
+where
+    I: IntoIterator<Item = S>,
+    S: AsRef<std::ffi::OsStr>,
+{
+    args.into_iter()
+        .map(|a| a.as_ref().to_string_lossy().into_owned())
+        .collect()
+}
+
+/// Run `tamis ARGS...` with no standard input.
+pub fn tamis<I, S>(args: I) -> Out
+where
+    I: IntoIterator<Item = S>,
+    S: AsRef<std::ffi::OsStr>,
+{
+    tamis_with_stdin(args, None)
+}
+
+/// Run `tamis ARGS...`, feeding `stdin` (or nothing) to it.
+pub fn tamis_with_stdin<I, S>(args: I, stdin: Option<&[u8]>) -> Out
+where
+    I: IntoIterator<Item = S>,
+    S: AsRef<std::ffi::OsStr>,
+{
+    let args = to_strings(args);
+    let mut cmd = Command::new(bin());
+    cmd.args(&args)
+        .env_remove("RUST_BACKTRACE")
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped())
+        .stdin(if stdin.is_some() {
+            Stdio::piped()
+        } else {
+            Stdio::null()
+        });
+    let mut child = cmd.spawn().expect("run tamis");
+    if let Some(bytes) = stdin {
+        let mut w = child.stdin.take().expect("stdin");
+        let bytes = bytes.to_vec();
+        // Write from a thread so a child that stops reading cannot block us.
+        std::thread::spawn(move || {
+            let _ = w.write_all(&bytes);
+        });
+    }
+    let o = child.wait_with_output().expect("wait for tamis");
+    Out {
+        args,
+        code: o.status.code(),
+        stdout: String::from_utf8_lossy(&o.stdout).into_owned(),
+        stderr: String::from_utf8_lossy(&o.stderr).into_owned(),
+    }
+}
+
+/// Run `tamis ARGS...` with its standard output a pipe that nobody reads any
+/// more, as when the output is piped into a command that has exited early
+/// (`tamis stats DIR | head -0`). Returns exit code and standard error.
+///
+/// The pipe is the standard input of a short-lived process (`tamis --version`):
+/// once that process has exited, the pipe has no reader left, so the first write
+/// of the process under test fails with EPIPE, whatever the timing.
+pub fn tamis_closed_stdout(args: &[&str]) -> (Option<i32>, String) {
+    let mut reader = Command::new(bin())
+        .arg("--version")
+        .stdin(Stdio::piped())
+        .stdout(Stdio::null())
+        .stderr(Stdio::null())
+        .spawn()
+        .expect("run tamis --version");
+    let write_end = reader.stdin.take().expect("piped stdin");
+    assert!(reader.wait().expect("wait").success());
+    let o = Command::new(bin())
+        .args(args)
+        .env_remove("RUST_BACKTRACE")
+        .stdin(Stdio::null())
+        .stdout(Stdio::from(write_end))
+        .stderr(Stdio::piped())
+        .output()
+        .expect("run tamis");
+    (
+        o.status.code(),
+        String::from_utf8_lossy(&o.stderr).into_owned(),
+    )
+}
+
+/// `tamis ingest INPUTS... --out OUT EXTRA...`
+pub fn ingest(inputs: &[&Path], out: &Path, extra: &[&str]) -> Out {
+    let mut args: Vec<std::ffi::OsString> = vec!["ingest".into()];
+    args.extend(inputs.iter().map(|p| p.as_os_str().to_owned()));
+    args.push("--out".into());
+    args.push(out.as_os_str().to_owned());
+    args.extend(extra.iter().map(Into::into));
+    tamis(args)
+}
+
+/// Path as a `&str` (temporary folders are ASCII here).
+pub fn s(p: &Path) -> &str {
+    p.to_str().expect("UTF-8 path")
+}
+
+/// `tamis stats DIR --json`, parsed.
+pub fn stats_json(dir: &Path) -> serde_json::Value {
+    let o = tamis(["stats", s(dir), "--json"]);
+    o.ok();
+    serde_json::from_str(&o.stdout).unwrap_or_else(|e| panic!("stats JSON: {e}\n{}", o.stdout))
+}
+
+/// The raw manifest of a dataset, parsed as plain JSON.
+pub fn manifest_json(dir: &Path) -> serde_json::Value {
+    let bytes = std::fs::read(dir.join("manifest.json")).expect("manifest.json");
+    serde_json::from_slice(&bytes).expect("manifest is JSON")
+}
+
+/// The manifest through the library.
+pub fn manifest(dir: &Path) -> Manifest {
+    Manifest::load(dir).expect("manifest loads")
+}
+
+/// Names of the entries of a folder.
+pub fn names_in(dir: &Path) -> BTreeSet<String> {
+    match std::fs::read_dir(dir) {
+        Ok(rd) => rd
+            .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
+            .collect(),
+        Err(_) => BTreeSet::new(),
+    }
+}
+
+/// Every file of a folder with its bytes.
+pub fn contents(dir: &Path) -> BTreeMap<String, Vec<u8>> {
+    names_in(dir)
+        .into_iter()
+        .map(|n| {
+            let b = std::fs::read(dir.join(&n)).unwrap();
+            (n, b)
+        })
+        .collect()
+}
+
+/// The binary files of a dataset (shards and document frequencies) with their bytes.
+pub fn data_files(dir: &Path) -> BTreeMap<String, Vec<u8>> {
+    contents(dir)
+        .into_iter()
+        .filter(|(n, _)| n.ends_with(".tms") || n.ends_with(".tmd"))
+        .collect()
+}
+
+/// Assert that two datasets hold byte-identical shards and document-frequency
+/// files under the same names.
+#[track_caller]
+pub fn assert_same_data(a: &Path, b: &Path) {
+    let (fa, fb) = (data_files(a), data_files(b));
+    assert!(!fa.is_empty(), "no data files in {}", a.display());
+    assert_eq!(
+        fa.keys().collect::<Vec<_>>(),
+        fb.keys().collect::<Vec<_>>(),
+        "file names differ"
+    );
+    for (name, bytes) in &fa {
+        assert!(bytes == &fb[name], "{name} differs");
+    }
+    let (ma, mb) = (manifest(a), manifest(b));
+    let sums = |m: &Manifest| {
+        m.shards
+            .iter()
+            .map(|s| (s.file.clone(), s.checksum.clone()))
+            .collect::<Vec<_>>()
+    };
+    assert_eq!(sums(&ma), sums(&mb));
+    assert_eq!(ma.labels, mb.labels);
+}
+
+/// One row read back from a shard.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Row {
+    /// Label name (through the manifest's dictionary).
+    pub label: String,
+    /// Bucket indices.
+    pub indices: Vec<u32>,
+    /// Values.
+    pub values: Vec<f32>,
+}
+
+impl Row {
+    /// A total-order key (values by their bits), for comparing multisets of rows.
+    pub fn key(&self) -> (String, Vec<u32>, Vec<u32>) {
+        (
+            self.label.clone(),
+            self.indices.clone(),
+            self.values.iter().map(|v| v.to_bits()).collect(),
+        )
+    }
+}
+
+/// All rows of the given split (or of both), shard by shard in manifest order.
+pub fn rows(dir: &Path, split: Option<Split>) -> Vec<Row> {
+    let m = manifest(dir);
+    let mut out = Vec::new();
+    for e in m
+        .shards
+        .iter()
+        .filter(|e| split.is_none_or(|s| s == e.split))
+    {
+        let sh = Shard::open(&dir.join(&e.file)).expect("shard opens");
+        assert_eq!(sh.rows() as u64, e.rows, "{}", e.file);
+        for i in 0..sh.rows() {
+            let r = sh.row(i);
+            out.push(Row {
+                label: m.labels[r.label as usize].name.clone(),
+                indices: r.indices.to_vec(),
+                values: r.values.to_vec(),
+            });
+        }
+    }
+    out
+}
+
+/// Sorted multiset keys of rows.
+pub fn row_keys(rows: &[Row]) -> Vec<(String, Vec<u32>, Vec<u32>)> {
+    let mut k: Vec<_> = rows.iter().map(Row::key).collect();
+    k.sort();
+    k
+}
+
+/// Count rows per label.
+pub fn per_label(rows: &[Row]) -> BTreeMap<String, u64> {
+    let mut m = BTreeMap::new();
+    for r in rows {
+        *m.entry(r.label.clone()).or_insert(0) += 1;
+    }
+    m
+}
+
+/// Labels of a TSV text counted independently of tamis: the label is what comes
+/// before the first tab, with surrounding ASCII spaces removed; blank lines are
+/// skipped.
+pub fn tsv_label_counts(text: &[u8]) -> BTreeMap<String, u64> {
+    let mut m = BTreeMap::new();
+    for line in text.split(|&b| b == b'\n') {
+        let line = line.strip_suffix(b"\r").unwrap_or(line);
+        if line.iter().all(|b| b.is_ascii_whitespace()) {
+            continue;
+        }
+        let tab = line.iter().position(|&b| b == b'\t').expect("tab");
+        let label = String::from_utf8(line[..tab].trim_ascii().to_vec()).unwrap();
+        *m.entry(label).or_insert(0) += 1;
+    }
+    m
+}
+
+/// `(offset, length)` of section `id` of a tamis container file, read from its
+/// header as documented in `src/container.rs`: the section count is the `u32` at
+/// byte 16, the table starts at byte 64 with 32-byte entries `id u32, reserved
+/// u32, offset u64, length u64, xxh3 u64`.
+pub fn section(bytes: &[u8], id: u32) -> (usize, usize) {
+    let u32_at = |at: usize| u32::from_le_bytes(bytes[at..at + 4].try_into().unwrap());
+    let u64_at = |at: usize| u64::from_le_bytes(bytes[at..at + 8].try_into().unwrap());
+    assert_eq!(&bytes[..8], b"\x89TAMIS\r\n", "magic");
+    let count = u32_at(16) as usize;
+    for i in 0..count {
+        let e = 64 + 32 * i;
+        if u32_at(e) == id {
+            return (u64_at(e + 8) as usize, u64_at(e + 16) as usize);
+        }
+    }
+    panic!("no section {id}");
+}
+
+/// Shard section ids (from the table in `src/shard/mod.rs`).
+pub const SEC_INDICES: u32 = 1;
+/// Values section id.
+pub const SEC_VALUES: u32 = 2;
+/// Row offsets section id.
+pub const SEC_INDPTR: u32 = 3;
+/// Labels section id.
+pub const SEC_LABELS: u32 = 4;
+
+/// Write `rows` invented messages as TSV to `path` with the library's generator.
+pub fn synth_tsv(path: &Path, rows: u64, seed: u64) {
+    let mut buf = Vec::new();
+    tamis::synth::Synth::new(tamis::synth::SynthConfig {
+        seed,
+        ..Default::default()
+    })
+    .write_rows(rows, &mut buf)
+    .unwrap();
+    std::fs::write(path, buf).unwrap();
+}
+
+/// Check that `tamis ARGS... --help` exits 0 and that every argument and option
+/// it lists has an explanation, on the same line or on the lines below it.
+#[track_caller]
+pub fn assert_help_explains_everything(args: &[&str]) {
+    for flag in ["--help", "-h"] {
+        let mut a: Vec<&str> = args.to_vec();
+        a.push(flag);
+        let o = tamis(&a);
+        o.ok();
+        let lines: Vec<&str> = o.stdout.lines().collect();
+        assert!(
+            lines.iter().any(|l| l.starts_with("Usage: tamis")),
+            "{flag}: no usage line"
+        );
+        let mut entries = 0;
+        let mut in_list = false;
+        for (i, line) in lines.iter().enumerate() {
+            if matches!(*line, "Arguments:" | "Options:" | "Commands:") {
+                in_list = true;
+                continue;
+            }
+            if line.trim().is_empty() || !line.starts_with(' ') {
+                if !line.starts_with(' ') && !line.trim().is_empty() {
+                    in_list = false;
+                }
+                continue;
+            }
+            let indent = line.len() - line.trim_start().len();
+            let t = line.trim_start();
+            // Entries start at a small indent; explanations, wrapped text and
+            // lists of possible values are indented further.
+            if !in_list || indent > 6 {
+                continue;
+            }
+            let is_entry = t.starts_with('-') || t.starts_with('<') || args.is_empty();
+            if !is_entry {
+                continue;
+            }
+            entries += 1;
+            // "  -o, --out <DIR>  Dataset folder..." or the explanation below.
+            let sig_end = t.find("  ").map(|p| &t[p..]);
+            let same_line = sig_end.is_some_and(|rest| rest.trim().len() > 3);
+            let next_line = lines.get(i + 1).is_some_and(|n| {
+                let ni = n.len() - n.trim_start().len();
+                ni > indent && n.trim().len() > 3
+            });
+            assert!(
+                same_line || next_line,
+                "{} {flag}: no explanation for {t:?}\n{}",
+                args.join(" "),
+                o.stdout
+            );
+        }
+        assert!(entries >= 1, "{flag}: no options found in\n{}", o.stdout);
+    }
+}
+
+/// `1234567` → `"1,234,567"`, written here independently of `tamis::util`.
+pub fn thousands(n: u64) -> String {
+    let digits = n.to_string();
+    let mut groups: Vec<&str> = Vec::new();
+    let mut end = digits.len();
+    while end > 3 {
+        groups.push(&digits[end - 3..end]);
+        end -= 3;
+    }
+    groups.push(&digits[..end]);
+    groups.reverse();
+    groups.join(",")
+}
