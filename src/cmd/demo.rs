@@ -82,7 +82,7 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
         solver: SolverConfig {
             lambda: 1e-5,
             loss: Loss::Hinge,
-            batch: 8,
+            batch: 64,
             eta0: 1.0,
             project: false,
             average_from: 1,

@@ -31,7 +31,7 @@ pub struct Args {
     pub epochs: u32,
 
     /// Rows per step; margins of a batch are computed in parallel.
-    #[arg(long, default_value_t = 8, value_name = "B")]
+    #[arg(long, default_value_t = 64, value_name = "B")]
     pub batch: usize,
 
     /// Size of the first step; later steps are 1/(λ(t + t₀)) with t₀ = 1/(λ·η₀).

@@ -299,10 +299,9 @@ impl Linear {
     /// each of [`RANGES`] equal slices of the dimension), the slices are updated
     /// in parallel; the result does not depend on the number of threads.
     #[allow(clippy::too_many_arguments)]
-    fn step<R: Rows + ?Sized>(
+    fn step(
         &mut self,
-        rows: &R,
-        batch: &[usize],
+        xs: &[Row<'_>],
         coefs: &[f64],
         idf: Option<&[f32]>,
         eta: f64,
@@ -310,7 +309,7 @@ impl Linear {
         average: bool,
         splits: Option<&[[u32; RANGES + 1]]>,
     ) {
-        let k = batch.len() as f64;
+        let k = xs.len() as f64;
         self.s *= 1.0 - eta * cfg.lambda;
         if self.s < RENORM_BELOW {
             self.renormalize();
@@ -322,18 +321,17 @@ impl Linear {
         match splits {
             None => {
                 let mut dn = 0.0;
-                for (&r, &c) in batch.iter().zip(coefs) {
+                for (x, &c) in xs.iter().zip(coefs) {
                     if c == 0.0 {
                         continue;
                     }
-                    let x = rows.row(r);
                     dn += apply(
                         &mut self.v,
                         &mut self.u,
                         mask,
                         0,
                         mask,
-                        &x,
+                        x,
                         0..x.indices.len(),
                         -scale * c,
                         big_b,
@@ -351,18 +349,17 @@ impl Linear {
                     .enumerate()
                     .map(|(q, (v, u))| {
                         let mut dn = 0.0;
-                        for ((&r, &c), sp) in batch.iter().zip(coefs).zip(splits) {
+                        for ((x, &c), sp) in xs.iter().zip(coefs).zip(splits) {
                             if c == 0.0 || sp[q] == sp[q + 1] {
                                 continue;
                             }
-                            let x = rows.row(r);
                             dn += apply(
                                 v,
                                 u,
                                 mask,
                                 q * width,
                                 width - 1,
-                                &x,
+                                x,
                                 sp[q] as usize..sp[q + 1] as usize,
                                 -scale * c,
                                 big_b,
@@ -436,7 +433,7 @@ impl Linear {
 
 /// Slices of the dimension updated in parallel by a binary model's step (fixed,
 /// so results do not depend on the number of threads).
-pub const RANGES: usize = 8;
+pub const RANGES: usize = 4;
 /// Batches at least this large take the parallel path.
 pub const PARALLEL_BATCH: usize = 64;
 
@@ -580,67 +577,60 @@ impl Trainer {
         let cfg = &self.cfg;
         let idf = self.idf.as_deref();
         let weights = &self.class_weights;
-        let mut tally = Tally {
-            rows: batch.len() as u64,
-            ..Tally::default()
+        // Resolve the batch's rows once; every phase below works on the slices.
+        let xs: Vec<Row<'_>> = batch.iter().map(|&r| rows.row(r)).collect();
+        let tally = Tally {
+            rows: xs.len() as u64,
+            nnz: xs.iter().map(|x| x.indices.len() as u64).sum(),
+            loss: 0.0,
         };
-        tally.nnz = batch
-            .iter()
-            .map(|&r| rows.row(r).indices.len() as u64)
-            .sum();
         let losses: Vec<f64> = if self.models.len() == 1 {
             // Binary: rows in parallel for the margins (and where each row's
             // indices enter each slice of the dimension), then slices in parallel.
             let m = &self.models[0];
             let target = &self.targets[0];
-            let parallel = batch.len() >= PARALLEL_BATCH;
+            let parallel = xs.len() >= PARALLEL_BATCH;
             let dim = m.dim();
             self.margins.clear();
             self.splits.clear();
             if parallel {
                 let width = (dim / RANGES) as u32;
-                batch
-                    .par_iter()
+                let dmask = dim as u32 - 1;
+                xs.par_iter()
                     .with_min_len(32)
-                    .map(|&r| {
-                        let x = rows.row(r);
-                        let mut sp = [0u32; RANGES + 1];
-                        for (q, slot) in sp.iter_mut().enumerate().skip(1) {
+                    .map(|x| {
+                        let n = x.indices.len() as u32;
+                        let mut sp = [n; RANGES + 1];
+                        sp[0] = 0;
+                        for q in 1..RANGES {
                             let lim = q as u32 * width;
-                            *slot =
-                                x.indices.partition_point(|&i| (i & (dim as u32 - 1)) < lim) as u32;
+                            // Monotone and within the row even for a damaged
+                            // shard whose indices are out of order.
+                            sp[q] = (x.indices.partition_point(|&i| (i & dmask) < lim) as u32)
+                                .max(sp[q - 1])
+                                .min(n);
                         }
-                        (m.margin(&x, idf), sp)
+                        (m.margin(x, idf), sp)
                     })
                     .unzip_into_vecs(&mut self.margins, &mut self.splits);
-                // Rows of a damaged shard may have unmasked indices out of order;
-                // the split offsets must still be monotone and end at the row.
-                for (sp, &r) in self.splits.iter_mut().zip(batch) {
-                    let n = rows.row(r).indices.len() as u32;
-                    sp[RANGES] = n;
-                    for q in 1..RANGES {
-                        sp[q] = sp[q].max(sp[q - 1]).min(n);
-                    }
-                }
             } else {
-                self.margins
-                    .extend(batch.iter().map(|&r| m.margin(&rows.row(r), idf)));
+                self.margins.extend(xs.iter().map(|x| m.margin(x, idf)));
             }
             let coefs = &mut self.coefs[0];
             coefs.clear();
             let mut loss = 0.0;
-            for (&r, &mg) in batch.iter().zip(&self.margins) {
-                let label = rows.row(r).label;
-                let y = target.y(label);
-                let c = weights.get(label as usize).copied().unwrap_or(1.0);
+            for (x, &mg) in xs.iter().zip(&self.margins) {
+                let y = target.y(x.label);
+                let c = weights.get(x.label as usize).copied().unwrap_or(1.0);
                 loss += c * cfg.loss.value(y * mg);
                 coefs.push(c * cfg.loss.derivative(y * mg) * y);
             }
             let splits = parallel.then_some(&self.splits[..]);
-            self.models[0].step(rows, batch, coefs, idf, eta, cfg, average, splits);
+            self.models[0].step(&xs, coefs, idf, eta, cfg, average, splits);
             vec![loss]
         } else {
             // One-vs-rest: models in parallel, each over the whole batch.
+            let xs = &xs;
             self.models
                 .par_iter_mut()
                 .zip(self.coefs.par_iter_mut())
@@ -648,21 +638,22 @@ impl Trainer {
                 .map(|((m, coefs), target)| {
                     coefs.clear();
                     let mut loss = 0.0;
-                    for &r in batch {
-                        let x = rows.row(r);
+                    for x in xs {
                         let y = target.y(x.label);
                         let c = weights.get(x.label as usize).copied().unwrap_or(1.0);
-                        let mg = y * m.margin(&x, idf);
+                        let mg = y * m.margin(x, idf);
                         loss += c * cfg.loss.value(mg);
                         coefs.push(c * cfg.loss.derivative(mg) * y);
                     }
-                    m.step(rows, batch, coefs, idf, eta, cfg, average, None);
+                    m.step(xs, coefs, idf, eta, cfg, average, None);
                     loss
                 })
                 .collect()
         };
-        tally.loss = losses.iter().sum();
-        tally
+        Tally {
+            loss: losses.iter().sum(),
+            ..tally
+        }
     }
 
     /// The idf factors in use, if any.
