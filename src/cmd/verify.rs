@@ -12,7 +12,8 @@ use tamis::util::{bytes, thousands};
 /// Options of `tamis verify`.
 #[derive(Debug, clap::Args)]
 pub struct Args {
-    /// A dataset folder, or a single tamis file (shard or document frequencies).
+    /// A dataset folder, or a single tamis file (shard, document frequencies,
+    /// model or manifest).
     #[arg(value_name = "PATH")]
     pub path: PathBuf,
 }
@@ -56,6 +57,16 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
         Some((Kind::DocFreq, _)) => {
             dataset::docfreq::DocFreq::open(p, true)?;
             outln!("ok: document frequencies {}", p.display());
+        }
+        Some((Kind::Model, _)) => {
+            let m = tamis::model::Model::load(p)?;
+            outln!(
+                "ok: model {} ({} model(s) of {} features, labels {})",
+                p.display(),
+                m.models(),
+                thousands(m.dim() as u64),
+                m.meta.labels.join(", ")
+            );
         }
         Some((k, _)) => bail!(
             "{}: verifying {} files is not supported by this build",
