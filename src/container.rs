@@ -478,6 +478,14 @@ impl AtomicFile {
         sync_dir(&parent_dir(&self.dest))?;
         Ok(())
     }
+
+    /// Rename the file into place without syncing it. Only for files that become
+    /// reachable later through another file (a shard through the manifest): the
+    /// caller syncs them (see [`sync_file`]) before writing that file.
+    pub fn commit_unsynced(mut self) -> Result<()> {
+        drop(self.file.take());
+        std::fs::rename(&self.tmp, &self.dest).at(&self.dest)
+    }
 }
 
 impl Drop for AtomicFile {
@@ -499,6 +507,11 @@ pub fn parent_dir(path: &Path) -> PathBuf {
 /// fsync a folder so that a rename inside it is durable.
 pub fn sync_dir(dir: &Path) -> Result<()> {
     File::open(dir).and_then(|d| d.sync_all()).at(dir)
+}
+
+/// fsync a file written earlier.
+pub fn sync_file(path: &Path) -> Result<()> {
+    File::open(path).and_then(|f| f.sync_all()).at(path)
 }
 
 /// Write `bytes` to `dest` atomically (temporary file, sync, rename, folder sync).

@@ -674,6 +674,7 @@ fn ingest_options(input: &Path, out: &Path, spec: InputSpec) -> IngestOptions {
         threads: 1,
         max_bad_fraction: 0.5,
         progress: false,
+        sync: true,
     }
 }
 

@@ -64,6 +64,7 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
         threads: a.threads.unwrap_or_else(super::default_threads),
         max_bad_fraction: 0.01,
         progress: true,
+        sync: true,
     };
     let summary = dataset::ingest(&opts, super::stderr_log(false))?;
     outln!("   {}", summary.line());

@@ -112,6 +112,12 @@ pub struct Args {
     #[arg(long, value_name = "W")]
     pub scatter: Option<u32>,
 
+    /// Do not wait for shards to reach the disk before the manifest names them:
+    /// faster where the disk is slower than hashing, but a power loss during or
+    /// just after the run may leave a damaged dataset (`tamis verify` finds it).
+    #[arg(long)]
+    pub no_sync: bool,
+
     /// Print nothing but errors (no progress bar, no summary, no skipped-line reports).
     #[arg(long, short = 'q')]
     pub quiet: bool,
@@ -158,6 +164,7 @@ pub fn options(a: &Args) -> anyhow::Result<IngestOptions> {
         threads: a.threads.unwrap_or_else(super::default_threads),
         max_bad_fraction: a.max_bad_fraction,
         progress: !a.quiet,
+        sync: !a.no_sync,
     })
 }
 

@@ -104,6 +104,9 @@ pub struct IngestOptions {
     pub max_bad_fraction: f64,
     /// Draw a progress bar when standard error is a terminal.
     pub progress: bool,
+    /// Sync every shard to disk before the manifest refers to it (on by default;
+    /// off trades safety against power loss for speed on slow disks).
+    pub sync: bool,
 }
 
 /// What an ingest run did.
@@ -478,6 +481,11 @@ fn process(
     out
 }
 
+fn join_sync(h: std::thread::JoinHandle<Result<()>>) -> Result<()> {
+    h.join()
+        .unwrap_or_else(|_| Err(Error::Invalid("internal: sync thread panicked".into())))
+}
+
 /// Files written by this run, removed unless the run commits.
 struct Written {
     paths: Vec<PathBuf>,
@@ -518,6 +526,9 @@ struct Sink {
     names: Vec<String>,
     log: Log,
     rows_done: Arc<AtomicU64>,
+    /// Sync shards before the manifest refers to them.
+    durable: bool,
+    syncs: Vec<std::thread::JoinHandle<Result<()>>>,
 }
 
 impl Sink {
@@ -562,6 +573,8 @@ impl Sink {
             names,
             log,
             rows_done,
+            durable: true,
+            syncs: Vec::new(),
         }
     }
 
@@ -614,8 +627,28 @@ impl Sink {
     }
 
     fn close_writer(&mut self, w: ShardWriter, split: Split) -> Result<()> {
-        let info = w.finish()?;
+        let info = w.finish_with(false)?;
+        self.sync_later(info.path.clone())?;
         self.record(info, split);
+        Ok(())
+    }
+
+    /// Sync a finished shard on a thread of its own, so the disk works while
+    /// rows are hashed; at most two syncs are outstanding (the writer waits for
+    /// the oldest beyond that, which keeps it at the disk's pace).
+    fn sync_later(&mut self, path: PathBuf) -> Result<()> {
+        if !self.durable {
+            return Ok(());
+        }
+        while self.syncs.len() >= 2 {
+            let h = self.syncs.remove(0);
+            join_sync(h)?;
+        }
+        let h = std::thread::Builder::new()
+            .name("tamis-sync".into())
+            .spawn(move || crate::container::sync_file(&path))
+            .map_err(|e| Error::Invalid(format!("cannot start a thread: {e}")))?;
+        self.syncs.push(h);
         Ok(())
     }
 
@@ -759,6 +792,10 @@ impl Sink {
         }
         // The last open shards are finished together, each on a thread of its own
         // (finishing means moving values down, copying side files and syncing).
+        let durable = self.durable;
+        for h in std::mem::take(&mut self.syncs) {
+            join_sync(h)?;
+        }
         let mut open: Vec<(ShardWriter, Split)> = self
             .train
             .iter_mut()
@@ -769,7 +806,7 @@ impl Sink {
         let finished: Vec<Result<(crate::shard::ShardInfo, Split)>> = std::thread::scope(|s| {
             let handles: Vec<_> = open
                 .into_iter()
-                .map(|(w, split)| s.spawn(move || w.finish().map(|i| (i, split))))
+                .map(|(w, split)| s.spawn(move || w.finish_with(durable).map(|i| (i, split))))
                 .collect();
             handles
                 .into_iter()
@@ -823,6 +860,10 @@ impl Sink {
             lossy_utf8_rows: self.lossy,
             blank_lines: self.blank,
         });
+        if self.durable {
+            // The renames of the shards synced in the background.
+            crate::container::sync_dir(&self.dir)?;
+        }
         self.m.store(&self.dir)?;
         self.written.committed = true;
         if let Some(old) = replaced {
@@ -953,7 +994,8 @@ pub fn ingest(opts: &IngestOptions, log: Log) -> Result<IngestSummary> {
     let fraction = manifest.split.validation_fraction;
     let cfg = manifest.features.clone();
     Featurizer::new(&cfg)?;
-    let sink = Sink::new(&opts.out, manifest, names, log.clone(), rows_done.clone());
+    let mut sink = Sink::new(&opts.out, manifest, names, log.clone(), rows_done.clone());
+    sink.durable = opts.sync;
     let spec = &opts.spec;
     let batch_len = 2 * threads;
     // Document frequencies: one array per pool thread, summed at the end

@@ -538,7 +538,14 @@ impl ShardWriter {
 
     /// Assemble the sections, write the header and rename the shard into place.
     /// The file and its folder are synced.
-    pub fn finish(mut self) -> Result<ShardInfo> {
+    pub fn finish(self) -> Result<ShardInfo> {
+        self.finish_with(true)
+    }
+
+    /// As [`ShardWriter::finish`]; with `sync` false the shard is renamed into
+    /// place unsynced, and the caller must sync it (with
+    /// [`crate::container::sync_file`]) before anything refers to it.
+    pub fn finish_with(mut self, sync: bool) -> Result<ShardInfo> {
         use std::io::{Seek, SeekFrom, Write};
         use std::os::unix::fs::FileExt;
         let tmp = self.file.tmp_path().to_path_buf();
@@ -623,7 +630,11 @@ impl ShardWriter {
         let dest = self.file.dest().to_path_buf();
         let (rows, nnz) = (self.rows, self.nnz);
         drop(self.handle);
-        self.file.commit()?;
+        if sync {
+            self.file.commit()?;
+        } else {
+            self.file.commit_unsynced()?;
+        }
         let shard = Shard::open(&dest)?;
         Ok(ShardInfo {
             checksum: shard.header_checksum(),
