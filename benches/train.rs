@@ -25,12 +25,17 @@ fn rows(n: u64) -> MemRows {
     };
     let mut f = Featurizer::new(&cfg).unwrap();
     let mut text = Vec::new();
-    Synth::new(SynthConfig::default()).write_rows(n, &mut text).unwrap();
+    Synth::new(SynthConfig::default())
+        .write_rows(n, &mut text)
+        .unwrap();
     let mut out = MemRows::new();
     let (mut idx, mut val) = (Vec::new(), Vec::new());
     for line in text.split(|&b| b == b'\n').filter(|l| !l.is_empty()) {
         let tab = line.iter().position(|&b| b == b'\t').unwrap();
-        let label = LABELS.iter().position(|l| l.as_bytes() == &line[..tab]).unwrap() as u32;
+        let label = LABELS
+            .iter()
+            .position(|l| l.as_bytes() == &line[..tab])
+            .unwrap() as u32;
         idx.clear();
         val.clear();
         f.begin_row();
@@ -81,7 +86,9 @@ fn bench(c: &mut Criterion) {
     let mut g = c.benchmark_group("score");
     g.sample_size(10);
     g.throughput(Throughput::Elements(nnz * 6));
-    let weights: Vec<f32> = (0..6 << 20).map(|i| ((i % 97) as f32 - 48.0) / 100.0).collect();
+    let weights: Vec<f32> = (0..6 << 20)
+        .map(|i| ((i % 97) as f32 - 48.0) / 100.0)
+        .collect();
     let biases = vec![0.1f32; 6];
     g.bench_function("ovr6_scores", |b| {
         let mut out = Vec::new();

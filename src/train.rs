@@ -331,6 +331,12 @@ fn run(
         }
         let train_secs = t0.elapsed().as_secs_f64();
         let (w, b) = weights_of(&trainer.models);
+        if w.iter().chain(&b).any(|x| !x.is_finite()) {
+            return Err(Error::Invalid(format!(
+                "training diverged in epoch {}: the weights are no longer finite; lower --eta0 or raise --lambda",
+                epoch + 1
+            )));
+        }
         let eval = (!valid.is_empty()).then(|| {
             evaluate(
                 &valid,

@@ -34,9 +34,11 @@ pub struct Args {
     #[arg(long, default_value_t = 64, value_name = "B")]
     pub batch: usize,
 
-    /// Size of the first step; later steps are 1/(λ(t + t₀)) with t₀ = 1/(λ·η₀).
-    #[arg(long, default_value_t = 1.0, value_name = "ETA")]
-    pub eta0: f64,
+    /// Size of the first step on a row (a batch of B takes B times it); later
+    /// steps are 1/(λ(t + t₀)) with t₀ = max(1, 1/(λ·η₀·B)) [default: 1, and 0.01
+    /// for squared-hinge, whose gradient grows with the violation].
+    #[arg(long, value_name = "ETA")]
+    pub eta0: Option<f64>,
 
     /// Project the weights onto the ball of radius 1/√λ after each step.
     #[arg(long)]
@@ -80,7 +82,10 @@ pub fn options(a: &Args) -> TrainOptions {
             lambda: a.lambda,
             loss: a.loss,
             batch: a.batch,
-            eta0: a.eta0,
+            eta0: a.eta0.unwrap_or(match a.loss {
+                Loss::SquaredHinge => 0.01,
+                _ => 1.0,
+            }),
             project: a.project,
             average_from: a.average_from,
         },

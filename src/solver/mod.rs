@@ -12,8 +12,8 @@
 //! `t₀ = max(1, 1/(λ·η₀·k))`: the first step is `k·η₀` on the mean gradient of the
 //! batch, which moves as far as `k` single steps of `η₀` (the linear scaling of
 //! step size with batch size, common practice), so an epoch makes the same
-//! progress whatever the batch size; and `t₀ ≥ 1` keeps the first factor
-//! `1 − η₀λ` away from 0:
+//! progress whatever the batch size. With `t₀ = 1` the first shrink factor
+//! is 0; the scale then restarts at 1 from `v = 0` (see `renormalize`):
 //!
 //! ```text
 //! w ← (1 − ηₜλ)·w − (ηₜ/k)·Σ_{i∈Bₜ} cᵢ·loss'(mᵢ)·yᵢ·xᵢ        mᵢ = yᵢ(w·xᵢ + b)
@@ -271,6 +271,32 @@ impl Linear {
         self.v.len()
     }
 
+    /// The whole state, for checkpoints: `v`, `U`, the scalars
+    /// `[s, b, ‖v‖², B, Σb]` and the number of averaged steps.
+    pub fn state(&self) -> (&[f64], &[f64], [f64; 5], u64) {
+        (
+            &self.v,
+            &self.u,
+            [self.s, self.b, self.vnorm2, self.big_b, self.bias_sum],
+            self.averaged,
+        )
+    }
+
+    /// Rebuild a model from [`Linear::state`].
+    pub fn from_state(v: Vec<f64>, u: Vec<f64>, scalars: [f64; 5], averaged: u64) -> Self {
+        let [s, b, vnorm2, big_b, bias_sum] = scalars;
+        Linear {
+            v,
+            s,
+            b,
+            vnorm2,
+            u,
+            big_b,
+            bias_sum,
+            averaged,
+        }
+    }
+
     /// `w·x + b` with the current iterate; indices are masked to the dimension
     /// (a damaged shard cannot index out of bounds).
     #[inline]
@@ -393,6 +419,18 @@ impl Linear {
     /// Fold the scale into `v` (keeps the average intact).
     fn renormalize(&mut self) {
         let s = self.s;
+        if s == 0.0 {
+            // The shrink zeroed w (a first step of 1/λ): fold the running sum
+            // into U and restart v from zero, so the average stays finite.
+            for (u, v) in self.u.iter_mut().zip(self.v.iter_mut()) {
+                *u += self.big_b * *v;
+                *v = 0.0;
+            }
+            self.big_b = 0.0;
+            self.vnorm2 = 0.0;
+            self.s = 1.0;
+            return;
+        }
         for x in &mut self.v {
             *x *= s;
         }

@@ -468,3 +468,201 @@ pub fn thousands(n: u64) -> String {
     groups.reverse();
     groups.join(",")
 }
+
+// ------------------------------------------------------------------ models
+// Helpers for the tests of `train`, `score` and `eval`.
+
+/// `tamis train DIR --model MODEL EXTRA...`
+pub fn train(dir: &Path, model: &Path, extra: &[&str]) -> Out {
+    let mut args: Vec<std::ffi::OsString> = vec![
+        "train".into(),
+        dir.as_os_str().to_owned(),
+        "--model".into(),
+        model.as_os_str().to_owned(),
+    ];
+    args.extend(extra.iter().map(Into::into));
+    tamis(args)
+}
+
+/// `tamis eval MODEL DATA... EXTRA... --json`, parsed (the run must succeed).
+pub fn eval_json(model: &Path, data: &[&str], extra: &[&str]) -> serde_json::Value {
+    let mut args: Vec<String> = vec!["eval".into(), s(model).into()];
+    args.extend(data.iter().map(|d| d.to_string()));
+    args.extend(extra.iter().map(|d| d.to_string()));
+    args.push("--json".into());
+    let o = tamis(&args);
+    o.ok();
+    serde_json::from_str(&o.stdout).unwrap_or_else(|e| panic!("eval JSON: {e}\n{}", o.stdout))
+}
+
+/// The container header fields of a tamis file, read as documented in
+/// `src/container.rs`: kind (byte 8), version (12), section count (16), file
+/// length (24) and the four kind-specific parameters (32..64).
+#[derive(Debug, Clone, PartialEq)]
+pub struct FileHeader {
+    /// File kind (3 for a model).
+    pub kind: u32,
+    /// Format version of that kind.
+    pub version: u32,
+    /// Sections.
+    pub sections: u32,
+    /// File length recorded in the header.
+    pub file_len: u64,
+    /// Kind-specific parameters (a model: models, dimension, idf flag, 0).
+    pub params: [u64; 4],
+    /// Section ids in table order.
+    pub ids: Vec<u32>,
+}
+
+/// Parse the header of a tamis file (asserting the magic bytes).
+pub fn file_header(bytes: &[u8]) -> FileHeader {
+    assert!(bytes.len() >= 64, "only {} bytes", bytes.len());
+    assert_eq!(&bytes[..8], b"\x89TAMIS\r\n", "magic");
+    let u32_at = |at: usize| u32::from_le_bytes(bytes[at..at + 4].try_into().unwrap());
+    let u64_at = |at: usize| u64::from_le_bytes(bytes[at..at + 8].try_into().unwrap());
+    let sections = u32_at(16);
+    FileHeader {
+        kind: u32_at(8),
+        version: u32_at(12),
+        sections,
+        file_len: u64_at(24),
+        params: [u64_at(32), u64_at(40), u64_at(48), u64_at(56)],
+        ids: (0..sections as usize)
+            .map(|i| u32_at(64 + 32 * i))
+            .collect(),
+    }
+}
+
+/// Model section ids (from the table in `src/model/mod.rs`).
+pub const MODEL_META: u32 = 1;
+/// Weights section id (`f32`, models × dimension, model-major).
+pub const MODEL_WEIGHTS: u32 = 2;
+/// Biases section id (`f32`, one per model).
+pub const MODEL_BIASES: u32 = 3;
+/// idf section id (`f32`, dimension).
+pub const MODEL_IDF: u32 = 4;
+
+/// The metadata section of a model file, parsed as plain JSON.
+pub fn model_meta(path: &Path) -> serde_json::Value {
+    let bytes = std::fs::read(path).unwrap_or_else(|e| panic!("{}: {e}", path.display()));
+    let (off, len) = section(&bytes, MODEL_META);
+    serde_json::from_slice(&bytes[off..off + len]).expect("model metadata is JSON")
+}
+
+/// A section of little-endian `f32` values of a tamis file.
+pub fn f32_section(bytes: &[u8], id: u32) -> Vec<f32> {
+    let (off, len) = section(bytes, id);
+    assert_eq!(len % 4, 0, "section {id} length {len}");
+    bytes[off..off + len]
+        .chunks_exact(4)
+        .map(|c| f32::from_le_bytes(c.try_into().unwrap()))
+        .collect()
+}
+
+/// Invented messages from the library's generator with the given settings.
+pub fn synth_bytes(cfg: tamis::synth::SynthConfig, rows: u64) -> Vec<u8> {
+    let mut buf = Vec::new();
+    tamis::synth::Synth::new(cfg)
+        .write_rows(rows, &mut buf)
+        .unwrap();
+    buf
+}
+
+/// One line of `tamis score` TSV output.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Scored {
+    /// `WHERE<TAB>LABEL<TAB>SCORE[<TAB>PROBABILITY]`.
+    Row {
+        /// Line number, or `FILE:LINE`.
+        place: String,
+        /// Predicted label.
+        label: String,
+        /// Score as printed.
+        score: f64,
+        /// Probability as printed, for logistic models.
+        probability: Option<f64>,
+    },
+    /// `WHERE<TAB>!skipped<TAB>REASON: DETAIL`.
+    Skipped {
+        /// Line number, or `FILE:LINE`.
+        place: String,
+        /// Reason key.
+        reason: String,
+        /// Details.
+        detail: String,
+    },
+}
+
+impl Scored {
+    /// Where the record was.
+    pub fn place(&self) -> &str {
+        match self {
+            Scored::Row { place, .. } | Scored::Skipped { place, .. } => place,
+        }
+    }
+}
+
+/// Parse `tamis score` TSV output, asserting its shape line by line.
+pub fn parse_scores(stdout: &str) -> Vec<Scored> {
+    stdout
+        .lines()
+        .map(|line| {
+            let f: Vec<&str> = line.split('\t').collect();
+            assert!(f.len() >= 3, "short line {line:?}");
+            if f[1] == "!skipped" {
+                assert_eq!(f.len(), 3, "{line:?}");
+                let (reason, detail) = f[2].split_once(": ").expect("REASON: DETAIL");
+                return Scored::Skipped {
+                    place: f[0].into(),
+                    reason: reason.into(),
+                    detail: detail.into(),
+                };
+            }
+            assert!(f.len() <= 4, "{line:?}");
+            let num = |x: &str| -> f64 {
+                let v: f64 = x
+                    .parse()
+                    .unwrap_or_else(|_| panic!("number {x:?} in {line:?}"));
+                assert!(v.is_finite(), "{line:?}");
+                v
+            };
+            Scored::Row {
+                place: f[0].into(),
+                label: f[1].into(),
+                score: num(f[2]),
+                probability: f.get(3).map(|p| num(p)),
+            }
+        })
+        .collect()
+}
+
+/// `tamis score MODEL ARGS...` with no standard input; must succeed.
+pub fn score(model: &Path, args: &[&str]) -> Out {
+    let mut a: Vec<String> = vec!["score".into(), s(model).into()];
+    a.extend(args.iter().map(|x| x.to_string()));
+    let o = tamis(&a);
+    o.ok();
+    o
+}
+
+/// Labels of TSV records as `tamis` reads them (label before the first tab,
+/// ASCII spaces trimmed), one per non-blank line, in order.
+pub fn tsv_labels(text: &[u8]) -> Vec<String> {
+    text.split(|&b| b == b'\n')
+        .map(|l| l.strip_suffix(b"\r").unwrap_or(l))
+        .filter(|l| !l.iter().all(|b| b.is_ascii_whitespace()))
+        .map(|l| {
+            let tab = l.iter().position(|&b| b == b'\t').expect("tab");
+            String::from_utf8(l[..tab].trim_ascii().to_vec()).unwrap()
+        })
+        .collect()
+}
+
+/// Flip one bit in the middle of section `id` of the file at `path`.
+pub fn flip_in_section(path: &Path, id: u32) {
+    let mut bytes = std::fs::read(path).unwrap();
+    let (off, len) = section(&bytes, id);
+    assert!(len > 0, "section {id} is empty");
+    bytes[off + len / 2] ^= 0x10;
+    std::fs::write(path, bytes).unwrap();
+}
