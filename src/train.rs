@@ -331,9 +331,14 @@ fn run(
         }
         let train_secs = t0.elapsed().as_secs_f64();
         let (w, b) = weights_of(&trainer.models);
-        if w.iter().chain(&b).any(|x| !x.is_finite()) {
+        // The optimum has λ/2·‖w‖² ≤ F(0) = mean cᵢ·loss(0) per model; an iterate
+        // a thousand times beyond that has left the optimum's region for good.
+        let max_c = class_weights.iter().copied().fold(1.0, f64::max);
+        let bound = 1e3 * trainer.models.len() as f64 * max_c * opts.solver.loss.value(0.0);
+        let reg = trainer.regularizer();
+        if !(reg.is_finite() && reg <= bound) || w.iter().chain(&b).any(|x| !x.is_finite()) {
             return Err(Error::Invalid(format!(
-                "training diverged in epoch {}: the weights are no longer finite; lower --eta0 or raise --lambda",
+                "training diverged in epoch {}: the weights grew without bound; lower --eta0 or raise --lambda",
                 epoch + 1
             )));
         }

@@ -763,8 +763,9 @@ fn squared_hinge_trains_with_the_default_settings() {
     let t = tmp();
     let dir = t.path().join("d");
     fixture_dataset(&dir, &[]);
-    // The hinge and logistic losses learn the fixture with the defaults; so
-    // must the squared hinge (the same step schedule, a loss that is smooth).
+    // Every loss learns the fixture with its default settings (the squared
+    // hinge, whose gradient grows with the violation, has a smaller default
+    // first step).
     let mut acc = BTreeMap::new();
     for loss in ["hinge", "logistic", "squared-hinge"] {
         let model = t.path().join(format!("{loss}.tmm"));
@@ -786,6 +787,38 @@ fn squared_hinge_trains_with_the_default_settings() {
     }
     for (loss, a) in &acc {
         assert!(*a > 0.8, "{loss}: validation accuracy {a} ({acc:?})");
+    }
+}
+
+#[test]
+fn a_diverging_run_is_not_written_silently() {
+    let t = tmp();
+    let dir = t.path().join("d");
+    fixture_dataset(&dir, &[]);
+    // Zero weights have a squared-hinge loss of 1 per model, 6 in all; a run
+    // whose validation loss ends far above that has diverged. It must either
+    // say so and write nothing, or end with a usable model.
+    for eta0 in ["1", "0.3", "0.1"] {
+        let model = t.path().join(format!("m{eta0}.tmm"));
+        let o = train(
+            &dir,
+            &model,
+            &["--loss", "squared-hinge", "--eta0", eta0, "--epochs", "5"],
+        );
+        if o.code == Some(1) {
+            o.fails().stderr_has("diverged");
+            assert!(!model.exists());
+            continue;
+        }
+        o.ok();
+        let meta = model_meta(&model);
+        let last = meta["epochs"].as_array().unwrap().last().unwrap().clone();
+        let loss = last["validation_loss"].as_f64().unwrap();
+        assert!(
+            loss < 60.0,
+            "--eta0 {eta0}: exit 0 and a model written whose validation loss is {loss:e}\n{}",
+            o.stderr
+        );
     }
 }
 

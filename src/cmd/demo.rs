@@ -109,10 +109,7 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
         model: model.clone(),
         data: vec![data.to_string_lossy().into_owned()],
         split: super::eval::Which::Validation,
-        format: None,
-        label: None,
-        text: vec![],
-        numeric: vec![],
+        fields: Default::default(),
         json: false,
         threads: Some(opts.threads),
     })?;

@@ -7,7 +7,7 @@ use std::process::ExitCode;
 use anyhow::{bail, Context};
 use tamis::dataset::{self, Manifest, Split};
 use tamis::eval::{self, Accumulator, Metrics, Weights};
-use tamis::input::{Format, LabelMode};
+use tamis::input::LabelMode;
 use tamis::model::Model;
 use tamis::score::{self, Outcome};
 use tamis::util::thousands;
@@ -38,33 +38,9 @@ pub struct Args {
     #[arg(long, value_enum, default_value_t = Which::Validation)]
     pub split: Which,
 
-    /// For raw inputs: the record format [default: the model's].
-    #[arg(long, value_enum)]
-    pub format: Option<Format>,
-
-    /// For raw inputs: CSV column or JSON field with the label [default: the model's].
-    #[arg(
-        long = "label-column",
-        visible_alias = "label-field",
-        value_name = "NAME"
-    )]
-    pub label: Option<String>,
-
-    /// For raw inputs: CSV columns or JSON fields with text [default: the model's].
-    #[arg(
-        long = "text-column",
-        visible_alias = "text-field",
-        value_name = "NAME"
-    )]
-    pub text: Vec<String>,
-
-    /// For raw inputs: CSV columns or JSON fields with numbers [default: the model's].
-    #[arg(
-        long = "numeric-field",
-        visible_alias = "numeric-column",
-        value_name = "NAME"
-    )]
-    pub numeric: Vec<String>,
+    /// For raw inputs: how records are read.
+    #[command(flatten)]
+    pub fields: super::score::ModelFields,
 
     /// Print JSON (keys include rows, accuracy, macro_f1, per_class, confusion,
     /// hinge_loss, log_loss).
@@ -146,7 +122,7 @@ fn on_dataset(model: &Model, dir: &Path, which: Which) -> anyhow::Result<(Metric
 }
 
 fn on_inputs(model: &Model, a: &Args, threads: usize) -> anyhow::Result<(Metrics, Vec<String>)> {
-    let spec = super::score::spec_for(model, a.format, &a.label, &a.text, &a.numeric, 1 << 20);
+    let spec = a.fields.spec(model, 1 << 20);
     let labels = score::decision_labels(model);
     let k = if model.is_binary() { 2 } else { labels.len() };
     let mut acc = Accumulator::new(k, model.meta.loss);

@@ -30,7 +30,31 @@ pub struct Args {
     #[arg(value_name = "INPUT")]
     pub inputs: Vec<String>,
 
-    /// Record format [default: the one the model was trained on].
+    #[command(flatten)]
+    pub fields: ModelFields,
+
+    /// Output format.
+    #[arg(long, value_enum, default_value_t = OutputFormat::Tsv)]
+    pub output_format: OutputFormat,
+
+    /// Records longer than this many bytes are reported as skipped.
+    #[arg(long, value_name = "BYTES", default_value_t = 1 << 20)]
+    pub max_line_bytes: usize,
+
+    /// Threads [default: all cores]; the output order is the input order regardless.
+    #[arg(long, short = 'j', value_name = "N")]
+    pub threads: Option<usize>,
+
+    /// Do not print the summary line on standard error.
+    #[arg(long, short = 'q')]
+    pub quiet: bool,
+}
+
+/// How raw text is read when a model scores it: the model's own settings unless
+/// given here (shared by `score` and `eval`).
+#[derive(Debug, Clone, Default, clap::Args)]
+pub struct ModelFields {
+    /// Record format of raw inputs [default: the one the model was trained on].
     #[arg(long, value_enum)]
     pub format: Option<Format>,
 
@@ -57,54 +81,32 @@ pub struct Args {
         value_name = "NAME"
     )]
     pub numeric: Vec<String>,
-
-    /// Output format.
-    #[arg(long, value_enum, default_value_t = OutputFormat::Tsv)]
-    pub output_format: OutputFormat,
-
-    /// Records longer than this many bytes are reported as skipped.
-    #[arg(long, value_name = "BYTES", default_value_t = 1 << 20)]
-    pub max_line_bytes: usize,
-
-    /// Threads [default: all cores]; the output order is the input order regardless.
-    #[arg(long, short = 'j', value_name = "N")]
-    pub threads: Option<usize>,
-
-    /// Do not print the summary line on standard error.
-    #[arg(long, short = 'q')]
-    pub quiet: bool,
 }
 
-/// The input specification: the model's, with any field given on the command line
-/// replacing it.
-pub fn spec_for(
-    model: &Model,
-    format: Option<Format>,
-    label: &Option<String>,
-    text: &[String],
-    numeric: &[String],
-    max_line_bytes: usize,
-) -> InputSpec {
-    let mut spec = model.meta.input.clone();
-    if let Some(f) = format {
-        if f != spec.format {
-            spec.format = f;
-            if f == Format::Tsv {
-                spec = InputSpec::tsv(max_line_bytes);
+impl ModelFields {
+    /// The input specification: the model's, with any field given here replacing it.
+    pub fn spec(&self, model: &Model, max_line_bytes: usize) -> InputSpec {
+        let mut spec = model.meta.input.clone();
+        if let Some(f) = self.format {
+            if f != spec.format {
+                spec.format = f;
+                if f == Format::Tsv {
+                    spec = InputSpec::tsv(max_line_bytes);
+                }
             }
         }
+        if let Some(l) = &self.label {
+            spec.label = l.clone();
+        }
+        if !self.text.is_empty() {
+            spec.text = self.text.clone();
+        }
+        if !self.numeric.is_empty() {
+            spec.numeric = self.numeric.clone();
+        }
+        spec.max_line_bytes = max_line_bytes;
+        spec
     }
-    if let Some(l) = label {
-        spec.label = l.clone();
-    }
-    if !text.is_empty() {
-        spec.text = text.to_vec();
-    }
-    if !numeric.is_empty() {
-        spec.numeric = numeric.to_vec();
-    }
-    spec.max_line_bytes = max_line_bytes;
-    spec
 }
 
 fn json_str(s: &str) -> String {
@@ -115,14 +117,7 @@ fn json_str(s: &str) -> String {
 pub fn run(a: Args) -> anyhow::Result<ExitCode> {
     let model = Model::load(&a.model)
         .with_context(|| format!("cannot load model {}", a.model.display()))?;
-    let spec = spec_for(
-        &model,
-        a.format,
-        &a.label,
-        &a.text,
-        &a.numeric,
-        a.max_line_bytes,
-    );
+    let spec = a.fields.spec(&model, a.max_line_bytes);
     let inputs = if a.inputs.is_empty() {
         vec!["-".to_string()]
     } else {

@@ -1,0 +1,498 @@
+//! End-to-end tests of `tamis eval`: the JSON report on a dataset split is
+//! consistent with itself and with `tamis stats` (row counts, accuracy from the
+//! confusion matrix, per-class figures, macro-F1, splits that add up); on
+//! labelled raw text it gives the figures recomputed here from `tamis score`
+//! output and the true labels; the log loss is reported for binary logistic
+//! models only; datasets hashed or labelled otherwise than the model, damaged
+//! shards and inputs without labels are refused with clear errors.
+
+mod common;
+
+use std::path::{Path, PathBuf};
+
+use common::*;
+use serde_json::Value;
+
+/// `fixtures/inbox.tsv` ingested with 2^16 buckets into `work/NAME` and a
+/// model trained on it at `work/NAME.tmm`.
+fn fixture_model(work: &Path, name: &str, ingest_extra: &[&str], train_extra: &[&str]) -> PathBuf {
+    let dir = work.join(name);
+    let mut a = vec!["--log2-buckets", "16", "-q"];
+    a.extend_from_slice(ingest_extra);
+    ingest(&[&fixture("inbox.tsv")], &dir, &a).ok();
+    let model = work.join(format!("{name}.tmm"));
+    let mut a = vec!["--epochs", "4", "-q"];
+    a.extend_from_slice(train_extra);
+    train(&dir, &model, &a).ok();
+    model
+}
+
+fn f(v: &Value) -> f64 {
+    v.as_f64().unwrap_or_else(|| panic!("not a number: {v}"))
+}
+
+fn strings(v: &Value) -> Vec<String> {
+    v.as_array()
+        .unwrap()
+        .iter()
+        .map(|x| x.as_str().unwrap().to_string())
+        .collect()
+}
+
+fn matrix(v: &Value) -> Vec<Vec<u64>> {
+    v.as_array()
+        .unwrap()
+        .iter()
+        .map(|r| {
+            r.as_array()
+                .unwrap()
+                .iter()
+                .map(|x| x.as_u64().unwrap())
+                .collect()
+        })
+        .collect()
+}
+
+/// Precision, recall and F1 per class from a confusion matrix `[truth][prediction]`,
+/// by their usual definitions: P = tp/(tp+fp), R = tp/(tp+fn), F1 = 2PR/(P+R)
+/// (van Rijsbergen's F-measure with β = 1; from memory), 0 where undefined.
+fn prf(conf: &[Vec<u64>]) -> Vec<(f64, f64, f64)> {
+    let k = conf.len();
+    (0..k)
+        .map(|c| {
+            let tp = conf[c][c] as f64;
+            let fp: f64 = (0..k).filter(|&t| t != c).map(|t| conf[t][c] as f64).sum();
+            let fn_: f64 = (0..k).filter(|&p| p != c).map(|p| conf[c][p] as f64).sum();
+            let p = if tp + fp > 0.0 { tp / (tp + fp) } else { 0.0 };
+            let r = if tp + fn_ > 0.0 { tp / (tp + fn_) } else { 0.0 };
+            let f1 = if p + r > 0.0 {
+                2.0 * p * r / (p + r)
+            } else {
+                0.0
+            };
+            (p, r, f1)
+        })
+        .collect()
+}
+
+fn close(a: f64, b: f64, tol: f64, what: &str) {
+    assert!((a - b).abs() <= tol, "{what}: {a} vs {b}");
+}
+
+/// Check an eval report against itself: keys, counts, accuracy from the
+/// confusion matrix, per-class figures and macro-F1.
+fn check_consistent(m: &Value, labels: &[String]) {
+    let keys: Vec<&str> = m.as_object().unwrap().keys().map(|k| k.as_str()).collect();
+    let mut keys = keys;
+    keys.sort();
+    assert_eq!(
+        keys,
+        [
+            "accuracy",
+            "confusion",
+            "confusion_labels",
+            "hinge_loss",
+            "log_loss",
+            "macro_f1",
+            "per_class",
+            "rows",
+            "skipped"
+        ]
+    );
+    assert_eq!(strings(&m["confusion_labels"]), labels);
+    let conf = matrix(&m["confusion"]);
+    let k = labels.len();
+    assert_eq!(conf.len(), k);
+    assert!(conf.iter().all(|r| r.len() == k));
+    let rows = m["rows"].as_u64().unwrap();
+    assert_eq!(conf.iter().flatten().sum::<u64>(), rows);
+    let trace: u64 = (0..k).map(|i| conf[i][i]).sum();
+    close(
+        f(&m["accuracy"]),
+        trace as f64 / rows as f64,
+        1e-12,
+        "accuracy",
+    );
+    let pc = m["per_class"].as_array().unwrap();
+    assert_eq!(pc.len(), k);
+    let want = prf(&conf);
+    for (c, (row, (p, r, f1))) in pc.iter().zip(&want).enumerate() {
+        assert_eq!(row["label"], labels[c].as_str());
+        assert_eq!(
+            row["support"].as_u64().unwrap(),
+            conf[c].iter().sum::<u64>()
+        );
+        close(f(&row["precision"]), *p, 1e-12, "precision");
+        close(f(&row["recall"]), *r, 1e-12, "recall");
+        close(f(&row["f1"]), *f1, 1e-12, "f1");
+    }
+    let mean = want.iter().map(|x| x.2).sum::<f64>() / k as f64;
+    close(f(&m["macro_f1"]), mean, 1e-12, "macro_f1");
+    let h = f(&m["hinge_loss"]);
+    assert!(h.is_finite() && h >= 0.0);
+}
+
+#[test]
+fn dataset_reports_are_consistent_across_splits() {
+    let t = tmp();
+    for (name, ingest_extra) in [("multi", vec![]), ("binary", vec!["--positive", "spam"])] {
+        let model = fixture_model(t.path(), name, &ingest_extra, &[]);
+        let dir = t.path().join(name);
+        let d = s(&dir);
+        let st = stats_json(&dir);
+        let labels = if name == "binary" {
+            vec!["not-spam".to_string(), "spam".to_string()]
+        } else {
+            strings(&model_meta(&model)["model_labels"])
+        };
+        let val = eval_json(&model, &[d], &[]);
+        let train_ = eval_json(&model, &[d], &["--split", "train"]);
+        let all = eval_json(&model, &[d], &["--split", "all"]);
+        assert_eq!(val, eval_json(&model, &[d], &["--split", "validation"]));
+        for (m, count) in [
+            (&val, "validation_rows"),
+            (&train_, "train_rows"),
+            (&all, "rows"),
+        ] {
+            check_consistent(m, &labels);
+            assert_eq!(m["rows"], st[count], "{name} {count}");
+            assert_eq!(m["skipped"], 0);
+            assert!(m["log_loss"].is_null(), "a hinge model has no log loss");
+        }
+        assert!(f(&all["rows"]) > f(&train_["rows"]) && f(&train_["rows"]) > f(&val["rows"]));
+        // The splits add up: counts cell by cell, losses weighted by rows.
+        let (cv, ct, ca) = (
+            matrix(&val["confusion"]),
+            matrix(&train_["confusion"]),
+            matrix(&all["confusion"]),
+        );
+        for i in 0..labels.len() {
+            for j in 0..labels.len() {
+                assert_eq!(ca[i][j], cv[i][j] + ct[i][j]);
+            }
+        }
+        let (nv, nt) = (f(&val["rows"]), f(&train_["rows"]));
+        close(
+            f(&all["hinge_loss"]),
+            (f(&val["hinge_loss"]) * nv + f(&train_["hinge_loss"]) * nt) / (nv + nt),
+            1e-9,
+            "hinge loss of all rows",
+        );
+        // Per-class support is the split's label count from `tamis stats`.
+        if name == "multi" {
+            for l in st["labels"].as_array().unwrap() {
+                let c = labels.iter().position(|x| l["name"] == x.as_str()).unwrap();
+                assert_eq!(
+                    val["per_class"][c]["support"], l["validation_rows"],
+                    "{}",
+                    l["name"]
+                );
+            }
+        } else {
+            let spam = st["labels"]
+                .as_array()
+                .unwrap()
+                .iter()
+                .find(|l| l["name"] == "spam")
+                .unwrap();
+            assert_eq!(train_["per_class"][1]["support"], spam["train_rows"]);
+        }
+        // The model learnt something: it beats always naming the largest class.
+        let largest = train_["per_class"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|c| c["support"].as_u64().unwrap())
+            .max()
+            .unwrap() as f64
+            / nt;
+        assert!(
+            f(&train_["accuracy"]) > largest + 0.05,
+            "{name}: accuracy {}, largest class {largest}",
+            train_["accuracy"]
+        );
+    }
+}
+
+#[test]
+fn the_printed_report_shows_the_json_figures() {
+    let t = tmp();
+    let model = fixture_model(t.path(), "d", &[], &[]);
+    let dir = t.path().join("d");
+    let m = eval_json(&model, &[s(&dir)], &["--split", "all"]);
+    let o = tamis(["eval", s(&model), s(&dir), "--split", "all"]);
+    o.ok()
+        .stdout_has(&format!(
+            "rows       {:>12}",
+            thousands(m["rows"].as_u64().unwrap())
+        ))
+        .stdout_has(&format!("accuracy   {:>11.2}%", 100.0 * f(&m["accuracy"])))
+        .stdout_has(&format!("macro-F1   {:>12.4}", f(&m["macro_f1"])))
+        .stdout_has(&format!("hinge loss {:>12.4}", f(&m["hinge_loss"])))
+        .stdout_has("confusion (rows: truth, columns: prediction)");
+    assert!(!o.stdout.contains("log loss"));
+    for c in m["per_class"].as_array().unwrap() {
+        let line = o
+            .stdout
+            .lines()
+            .find(|l| l.split_whitespace().next() == c["label"].as_str())
+            .unwrap_or_else(|| panic!("no line for {}", c["label"]));
+        let t: Vec<&str> = line.split_whitespace().collect();
+        assert_eq!(t[1], format!("{:.4}", f(&c["precision"])));
+        assert_eq!(t[2], format!("{:.4}", f(&c["recall"])));
+        assert_eq!(t[3], format!("{:.4}", f(&c["f1"])));
+    }
+}
+
+/// Metrics recomputed from `tamis score` output and the true labels of a TSV
+/// file: `classes` names the classes; `class_of` maps a true label to its class.
+fn recompute(
+    model: &Path,
+    input: &Path,
+    classes: &[String],
+    class_of: impl Fn(&str) -> usize,
+) -> (Vec<Vec<u64>>, Vec<(f64, usize)>) {
+    let out = parse_scores(&score(model, &[s(input)]).stdout);
+    let truth = tsv_labels(&std::fs::read(input).unwrap());
+    assert_eq!(out.len(), truth.len());
+    let k = classes.len();
+    let mut conf = vec![vec![0u64; k]; k];
+    let mut scores = Vec::new();
+    for (o, t) in out.iter().zip(&truth) {
+        let Scored::Row { label, score, .. } = o else {
+            panic!("{o:?}")
+        };
+        let pred = classes.iter().position(|c| c == label).unwrap();
+        let c = class_of(t);
+        conf[c][pred] += 1;
+        scores.push((*score, c));
+    }
+    (conf, scores)
+}
+
+#[test]
+fn raw_input_reports_match_a_recomputation_from_scores() {
+    let t = tmp();
+    let inbox = fixture("inbox.tsv");
+    // Six classes: the confusion matrix from predicted and true labels.
+    let model = fixture_model(t.path(), "multi", &[], &[]);
+    let labels = strings(&model_meta(&model)["model_labels"]);
+    let m = eval_json(&model, &[s(&inbox)], &[]);
+    check_consistent(&m, &labels);
+    let (conf, _) = recompute(&model, &inbox, &labels, |l| {
+        labels.iter().position(|x| x == l).unwrap()
+    });
+    assert_eq!(matrix(&m["confusion"]), conf);
+    assert_eq!(m["rows"], 300);
+    assert_eq!(m["skipped"], 0);
+    // The same rows as the dataset's two splits together.
+    let all = eval_json(&model, &[s(&t.path().join("multi"))], &["--split", "all"]);
+    assert_eq!(m["confusion"], all["confusion"]);
+    close(
+        f(&m["hinge_loss"]),
+        f(&all["hinge_loss"]),
+        1e-9,
+        "hinge loss",
+    );
+    // Binary logistic: also the mean hinge loss max(0, 1 − y·s) and the mean
+    // log loss ln(1 + e^(−y·s)) in nats (the logistic regression loss; from
+    // memory), from the printed scores (six decimals).
+    let model = fixture_model(
+        t.path(),
+        "bin",
+        &["--positive", "spam"],
+        &["--loss", "logistic"],
+    );
+    let classes = vec!["not-spam".to_string(), "spam".to_string()];
+    let m = eval_json(&model, &[s(&inbox)], &[]);
+    check_consistent(&m, &classes);
+    let (conf, scores) = recompute(&model, &inbox, &classes, |l| (l == "spam") as usize);
+    assert_eq!(matrix(&m["confusion"]), conf);
+    let n = scores.len() as f64;
+    let hinge = scores
+        .iter()
+        .map(|&(s, c)| {
+            let y = if c == 1 { 1.0 } else { -1.0 };
+            (1.0 - y * s).max(0.0)
+        })
+        .sum::<f64>()
+        / n;
+    let log = scores
+        .iter()
+        .map(|&(s, c)| {
+            let y = if c == 1 { 1.0 } else { -1.0 };
+            (1.0 + (-y * s).exp()).ln()
+        })
+        .sum::<f64>()
+        / n;
+    close(f(&m["hinge_loss"]), hinge, 1e-5, "hinge loss");
+    close(f(&m["log_loss"]), log, 1e-5, "log loss");
+    let all = eval_json(&model, &[s(&t.path().join("bin"))], &["--split", "all"]);
+    assert_eq!(m["confusion"], all["confusion"]);
+    close(f(&m["log_loss"]), f(&all["log_loss"]), 1e-9, "log loss");
+    // Several inputs and standard input count together.
+    let o = tamis_with_stdin(
+        ["eval", s(&model), s(&inbox), "-", "--json"],
+        Some(&fixture_bytes("inbox.tsv")),
+    );
+    o.ok();
+    let twice: Value = serde_json::from_str(&o.stdout).unwrap();
+    assert_eq!(twice["rows"], 600);
+    let doubled: Vec<Vec<u64>> = conf
+        .iter()
+        .map(|r| r.iter().map(|x| 2 * x).collect())
+        .collect();
+    assert_eq!(matrix(&twice["confusion"]), doubled);
+}
+
+#[test]
+fn log_loss_is_reported_for_binary_logistic_models_only() {
+    let t = tmp();
+    for (name, ingest_extra, loss, has) in [
+        ("bl", vec!["--positive", "spam"], "logistic", true),
+        ("bh", vec!["--positive", "spam"], "hinge", false),
+        ("ml", vec![], "logistic", false),
+        ("mh", vec![], "hinge", false),
+    ] {
+        let model = fixture_model(t.path(), name, &ingest_extra, &["--loss", loss]);
+        let dir = t.path().join(name);
+        for data in [s(&dir), s(&fixture("inbox.tsv"))] {
+            let m = eval_json(&model, &[data], &[]);
+            if has {
+                let l = f(&m["log_loss"]);
+                assert!(l > 0.0 && l.is_finite(), "{name}: {l}");
+                // A trained model beats always saying ½: ln 2.
+                assert!(l < std::f64::consts::LN_2, "{name}: {l}");
+            } else {
+                assert!(m["log_loss"].is_null(), "{name} {data}: {}", m["log_loss"]);
+            }
+        }
+    }
+}
+
+#[test]
+fn unknown_labels_and_unlabelled_records_are_not_counted() {
+    let t = tmp();
+    let model = fixture_model(t.path(), "d", &[], &[]);
+    let input = t.path().join("more.tsv");
+    let mut text = fixture_bytes("inbox.tsv");
+    text.extend_from_slice(b"charter\tCan we charter the Morning Tide for forty walkers?\n");
+    text.extend_from_slice(b"spam\t!!! ???\n");
+    std::fs::write(&input, &text).unwrap();
+    let o = tamis(["eval", s(&model), s(&input), "--json"]);
+    o.ok()
+        .stderr_has("1 records carry labels the model does not know");
+    let m: Value = serde_json::from_str(&o.stdout).unwrap();
+    assert_eq!(m["rows"], 300);
+    assert_eq!(m["skipped"], 2);
+    // Nothing labelled at all.
+    let bare = t.path().join("bare.tsv");
+    std::fs::write(&bare, b"Is the ferry running today\nwhere is my umbrella\n").unwrap();
+    tamis(["eval", s(&model), s(&bare)])
+        .fails()
+        .stderr_has("no labelled record");
+}
+
+#[test]
+fn datasets_that_differ_from_the_model_are_refused() {
+    let t = tmp();
+    let model = fixture_model(t.path(), "d", &[], &[]);
+    let inbox = fixture("inbox.tsv");
+    // Other hashing settings.
+    for (name, extra) in [
+        ("buckets", vec!["--log2-buckets", "17"]),
+        ("ngrams", vec!["--log2-buckets", "16", "--ngrams", "1"]),
+        ("seed", vec!["--log2-buckets", "16", "--seed", "2"]),
+    ] {
+        let dir = t.path().join(name);
+        let mut a = extra.clone();
+        a.push("-q");
+        ingest(&[&inbox], &dir, &a).ok();
+        let o = tamis(["eval", s(&model), s(&dir)]);
+        o.fails()
+            .stderr_has(s(&dir))
+            .stderr_has("hashing settings differ from the model's");
+        assert_eq!(o.stdout, "");
+    }
+    // The same settings, the labels in another order (first seen last).
+    let reversed = t.path().join("reversed.tsv");
+    let text = String::from_utf8(fixture_bytes("inbox.tsv")).unwrap();
+    let mut lines: Vec<&str> = text.lines().collect();
+    lines.reverse();
+    std::fs::write(&reversed, lines.join("\n") + "\n").unwrap();
+    let dir = t.path().join("reversed");
+    ingest(&[&reversed], &dir, &["--log2-buckets", "16", "-q"]).ok();
+    assert_ne!(
+        manifest(&dir)
+            .labels
+            .iter()
+            .map(|l| l.name.clone())
+            .collect::<Vec<_>>(),
+        strings(&model_meta(&model)["labels"])
+    );
+    tamis(["eval", s(&model), s(&dir)])
+        .fails()
+        .stderr_has(s(&dir))
+        .stderr_has("labels");
+    // A label the model does not know.
+    let extra = t.path().join("extra.tsv");
+    std::fs::write(
+        &extra,
+        "charter\tCan we charter the Morning Tide for forty walkers from Osk?\n".repeat(3),
+    )
+    .unwrap();
+    let dir = t.path().join("extra");
+    ingest(&[&inbox, &extra], &dir, &["--log2-buckets", "16", "-q"]).ok();
+    tamis(["eval", s(&model), s(&dir), "--split", "all"])
+        .fails()
+        .stderr_has("charter");
+    // A split without rows.
+    let dir = t.path().join("novalid");
+    ingest(
+        &[&inbox],
+        &dir,
+        &["--log2-buckets", "16", "--validation", "0", "-q"],
+    )
+    .ok();
+    tamis(["eval", s(&model), s(&dir)])
+        .fails()
+        .stderr_has("no rows in the chosen split");
+    assert_eq!(
+        eval_json(&model, &[s(&dir)], &["--split", "train"])["rows"],
+        300
+    );
+}
+
+#[test]
+fn a_damaged_shard_is_named() {
+    let t = tmp();
+    let model = fixture_model(t.path(), "d", &[], &[]);
+    let dir = t.path().join("d");
+    let m = manifest(&dir);
+    let e = m
+        .shards
+        .iter()
+        .filter(|e| e.split == tamis::dataset::Split::Validation)
+        .max_by_key(|e| e.rows)
+        .unwrap();
+    let shard = dir.join(&e.file);
+    let good = std::fs::read(&shard).unwrap();
+    flip_in_section(&shard, SEC_VALUES);
+    tamis(["eval", s(&model), s(&dir)])
+        .fails()
+        .stderr_has(&shard.display().to_string())
+        .stderr_has("values");
+    std::fs::write(&shard, &good[..good.len() - 64]).unwrap();
+    tamis(["eval", s(&model), s(&dir)])
+        .fails()
+        .stderr_has(&shard.display().to_string());
+    // The training split does not read it.
+    eval_json(&model, &[s(&dir)], &["--split", "train"]);
+    std::fs::write(&shard, &good).unwrap();
+    eval_json(&model, &[s(&dir)], &[]);
+}
+
+#[test]
+fn help_explains_every_option() {
+    assert_help_explains_everything(&["eval"]);
+}
