@@ -496,6 +496,31 @@ impl Drop for AtomicFile {
     }
 }
 
+/// Remove temporary files that an earlier, killed writer of `dest` left behind
+/// (`.NAME.tmp-PID` next to it, whose process no longer runs). Best effort:
+/// errors are ignored, since the files are unreachable garbage either way.
+pub fn remove_stale_temps(dest: &Path) {
+    let (dir, Some(name)) = (parent_dir(dest), dest.file_name()) else {
+        return;
+    };
+    let prefix = format!(".{}.tmp-", name.to_string_lossy());
+    let Ok(entries) = std::fs::read_dir(&dir) else {
+        return;
+    };
+    for e in entries.flatten() {
+        let file = e.file_name();
+        let Some(pid) = file.to_str().and_then(|f| f.strip_prefix(&prefix)) else {
+            continue;
+        };
+        let alive = pid
+            .parse::<u32>()
+            .is_ok_and(|p| p == std::process::id() || Path::new(&format!("/proc/{p}")).exists());
+        if !alive {
+            let _ = std::fs::remove_file(e.path());
+        }
+    }
+}
+
 /// The folder holding `path` (`.` for a bare file name).
 pub fn parent_dir(path: &Path) -> PathBuf {
     match path.parent() {

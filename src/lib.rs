@@ -10,6 +10,7 @@
 //!   → dataset   manifest, document frequencies, ingest   (dataset)
 //!   → solver    averaged Pegasos over row views          (solver)
 //!   → training  epochs over shards, validation, logging  (train)
+//!   → checkpoint whole solver state, resume exactly       (checkpoint)
 //!   → model     settings + labels + weights, scoring     (model)
 //! ```
 //!
@@ -40,6 +41,7 @@ compile_error!(
     "tamis maps its little-endian files directly and supports little-endian targets only"
 );
 
+pub mod checkpoint;
 pub mod container;
 pub mod dataset;
 pub mod error;

@@ -5,18 +5,32 @@
 //! requested epochs in the order of [`crate::solver::order`], evaluates the
 //! averaged iterate on the validation split after each epoch, and writes the
 //! model atomically.
+//!
+//! Checkpoints ([`crate::checkpoint`]) are written every `checkpoint_every`
+//! seconds, at every epoch end and when a stop is requested; [`resume`]
+//! continues from one and reaches the same model, byte for byte, as a run that
+//! was never interrupted. [`TrainOptions::init_from`] starts from an earlier
+//! model (warm start): its weights become the starting iterate and the step
+//! counter continues from the steps recorded in it, so the step sizes stay as
+//! small as they had become; the average restarts with this run.
 
 use std::io::IsTerminal;
 use std::path::{Path, PathBuf};
-use std::time::Instant;
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::Arc;
+use std::time::{Duration, Instant};
 
-use crate::dataset::{self, docfreq::DocFreq, Log, Manifest, Split};
+use crate::checkpoint::{
+    Checkpoint, CheckpointMeta, EarlyStop, EpochSums, Position, ShardRef, WriteCost,
+};
+use crate::container;
+use crate::dataset::{self, docfreq::DocFreq, Log, Manifest, ShardEntry, Split};
 use crate::error::{Error, Result};
 use crate::eval::{evaluate, per_class, Weights};
-use crate::model::{EpochLog, Model, ModelMeta, TrainSettings};
+use crate::model::{EpochLog, Model, ModelMeta, TrainSettings, WarmStart};
 use crate::shard::Shard;
 use crate::solver::order::{self, Group, Interleave};
-use crate::solver::{Linear, Rows, SolverConfig, Target, Trainer};
+use crate::solver::{Linear, SolverConfig, Target, Trainer};
 use crate::util;
 
 /// How example weights cᵢ are chosen.
@@ -29,6 +43,22 @@ pub enum ClassWeight {
     Balanced,
     /// Given weights per label; labels not named weigh 1.
     Given(Vec<(String, f64)>),
+}
+
+impl ClassWeight {
+    /// The rule as written on the command line (`none`, `balanced` or
+    /// `LABEL=W,...`); it parses back to the same value.
+    pub fn rule(&self) -> String {
+        match self {
+            ClassWeight::None => "none".into(),
+            ClassWeight::Balanced => "balanced".into(),
+            ClassWeight::Given(list) => list
+                .iter()
+                .map(|(l, x)| format!("{l}={x}"))
+                .collect::<Vec<_>>()
+                .join(","),
+        }
+    }
 }
 
 impl std::str::FromStr for ClassWeight {
@@ -78,6 +108,57 @@ pub struct TrainOptions {
     pub threads: usize,
     /// Draw a progress bar on a terminal.
     pub progress: bool,
+    /// Where checkpoints go (every `checkpoint_every` seconds and at every epoch
+    /// end). Without it, only an interruption writes one, to
+    /// [`default_checkpoint`] of the model.
+    pub checkpoint: Option<PathBuf>,
+    /// Seconds between checkpoints; 0 writes one after every step.
+    pub checkpoint_every: f64,
+    /// Start from the weights of this model (warm start).
+    pub init_from: Option<PathBuf>,
+    /// When set (by a signal handler), the run finishes its step, writes a
+    /// checkpoint and returns [`Outcome::Stopped`].
+    pub stop: Option<Arc<AtomicBool>>,
+}
+
+impl TrainOptions {
+    /// The options that continue the run saved in a checkpoint: its settings,
+    /// dataset and model; one progress bar, all cores, checkpoints every 60 s to
+    /// the same file (the caller adjusts what it needs).
+    pub fn from_checkpoint(meta: &CheckpointMeta, path: &Path) -> TrainOptions {
+        let s = &meta.settings;
+        TrainOptions {
+            dir: meta.dataset.clone(),
+            model: meta.model.clone(),
+            solver: s.solver.clone(),
+            epochs: s.epochs,
+            seed: s.seed,
+            class_weight: s.class_weight_rule.parse().unwrap_or(ClassWeight::None),
+            idf: s.idf,
+            patience: s.patience,
+            threads: 1,
+            progress: true,
+            checkpoint: Some(path.to_path_buf()),
+            checkpoint_every: DEFAULT_CHECKPOINT_SECONDS,
+            init_from: s.init_from.as_ref().map(|w| PathBuf::from(&w.model)),
+            stop: None,
+        }
+    }
+}
+
+/// Default seconds between checkpoints.
+pub const DEFAULT_CHECKPOINT_SECONDS: f64 = 60.0;
+
+/// Where an interrupted run without `--checkpoint` saves its state: the model's
+/// path with the extension `.tmc`.
+pub fn default_checkpoint(model: &Path) -> PathBuf {
+    if model.extension().is_some_and(|e| e == "tmc") {
+        let mut s = model.as_os_str().to_owned();
+        s.push(".tmc");
+        PathBuf::from(s)
+    } else {
+        model.with_extension("tmc")
+    }
 }
 
 /// What `train` produced.
@@ -87,6 +168,34 @@ pub struct TrainReport {
     pub model: Model,
     /// Seconds in all.
     pub seconds: f64,
+    /// The cost of the last checkpoint written, if any.
+    pub last_checkpoint: Option<WriteCost>,
+}
+
+/// How a run ended.
+#[derive(Debug, Clone)]
+pub enum Outcome {
+    /// All epochs (or early stopping) done; the model is written.
+    Finished(Box<TrainReport>),
+    /// Stopped on request; the state is in a checkpoint.
+    Stopped {
+        /// The checkpoint written.
+        checkpoint: PathBuf,
+        /// Where the run stood.
+        position: Position,
+    },
+}
+
+/// A checkpoint to continue from.
+#[derive(Debug, Clone)]
+pub struct Resume {
+    /// The loaded checkpoint.
+    pub checkpoint: Checkpoint,
+    /// The file it came from (for messages).
+    pub path: PathBuf,
+    /// Accept shards added to the dataset since the checkpoint; they join from
+    /// the next epoch.
+    pub allow_appended: bool,
 }
 
 /// The task of a dataset: binary with a positive class id, or one-vs-rest.
@@ -151,8 +260,14 @@ pub fn epoch_line(e: &EpochLog) -> String {
     )
 }
 
-fn open_split(dir: &Path, m: &Manifest, split: Split, n_labels: u32) -> Result<Vec<Shard>> {
-    m.shards_of(split)
+fn open_shards(
+    dir: &Path,
+    m: &Manifest,
+    entries: &[&ShardEntry],
+    n_labels: u32,
+) -> Result<Vec<Shard>> {
+    entries
+        .iter()
         .map(|e| {
             let s = dataset::open_shard(dir, e)?;
             if s.cols() != m.features.buckets() {
@@ -168,12 +283,65 @@ fn open_split(dir: &Path, m: &Manifest, split: Split, n_labels: u32) -> Result<V
 }
 
 /// Train a model on the dataset in `opts.dir` and write it to `opts.model`.
-pub fn train(opts: &TrainOptions, log: Log) -> Result<TrainReport> {
+pub fn train(opts: &TrainOptions, log: Log) -> Result<Outcome> {
+    begin(opts, None, log)
+}
+
+/// Continue the run saved in `resume.checkpoint`. The solver settings, epochs,
+/// seed, class weights, idf and patience are the checkpoint's (the caller
+/// refuses contradicting options; see [`TrainOptions::from_checkpoint`]); the
+/// dataset must be the one it was trained on, or that dataset with shards added
+/// when `allow_appended`. The final model is byte-identical to the model of an
+/// uninterrupted run.
+pub fn resume(opts: &TrainOptions, resume: Resume, log: Log) -> Result<Outcome> {
+    begin(opts, Some(resume), log)
+}
+
+/// Take a lock next to `dest`, explaining an unwritable folder.
+fn lock_next_to(dest: &Path, what: &str) -> Result<util::Lock> {
+    let mut name = dest.as_os_str().to_owned();
+    name.push(".lock");
+    util::Lock::acquire(Path::new(&name)).map_err(|e| match e {
+        Error::Io { cause, .. } => Error::Invalid(format!(
+            "cannot write the {what} {}: {cause} (checked before training starts)",
+            dest.display()
+        )),
+        other => other,
+    })
+}
+
+fn begin(opts: &TrainOptions, resume: Option<Resume>, log: Log) -> Result<Outcome> {
     let start = Instant::now();
-    if opts.epochs == 0 {
+    let settings_epochs = resume
+        .as_ref()
+        .map_or(opts.epochs, |r| r.checkpoint.meta.settings.epochs);
+    if settings_epochs == 0 {
         return Err(Error::Invalid("--epochs must be at least 1".into()));
     }
     opts.solver.validate()?;
+    if !(opts.checkpoint_every >= 0.0 && opts.checkpoint_every.is_finite()) {
+        return Err(Error::Invalid(format!(
+            "--checkpoint-every must be a number of seconds >= 0, got {}",
+            opts.checkpoint_every
+        )));
+    }
+    // Locks first: a second run writing the same files, or a folder that cannot
+    // be written, is refused before any work is done.
+    let ckpt_path = opts
+        .checkpoint
+        .clone()
+        .unwrap_or_else(|| default_checkpoint(&opts.model));
+    if same_file(&ckpt_path, &opts.model) {
+        return Err(Error::Invalid(format!(
+            "the checkpoint and the model cannot be the same file ({})",
+            opts.model.display()
+        )));
+    }
+    let _model_lock = lock_next_to(&opts.model, "model")?;
+    let _ckpt_lock = lock_next_to(&ckpt_path, "checkpoint")?;
+    container::remove_stale_temps(&opts.model);
+    container::remove_stale_temps(&ckpt_path);
+
     let m = Manifest::load(&opts.dir)?;
     let positive = task_of(&m)?;
     let n_train = m.train_rows();
@@ -208,8 +376,69 @@ pub fn train(opts: &TrainOptions, log: Log) -> Result<TrainReport> {
             }
         }
     }
-    // Example weights per class id.
-    let (class_weights, rule) = match &opts.class_weight {
+    let settings = match &resume {
+        Some(r) => {
+            check_dataset(
+                &r.checkpoint.meta,
+                &r.path,
+                &m,
+                &opts.dir,
+                positive,
+                r.allow_appended,
+            )?;
+            r.checkpoint.meta.settings.clone()
+        }
+        None => {
+            let (class_weights, class_weight_rule) = class_weights_of(&m, positive, opts)?;
+            TrainSettings {
+                solver: opts.solver.clone(),
+                epochs: opts.epochs,
+                seed: opts.seed,
+                class_weights,
+                class_weight_rule,
+                idf: opts.idf,
+                patience: opts.patience,
+                init_from: None,
+            }
+        }
+    };
+    let pool = rayon::ThreadPoolBuilder::new()
+        .num_threads(opts.threads.max(1))
+        .thread_name(|i| format!("tamis-train-{i}"))
+        .build()
+        .map_err(|e| Error::Invalid(format!("cannot start threads: {e}")))?;
+    let run = Run {
+        opts,
+        m: &m,
+        positive,
+        settings,
+        ckpt_path,
+        log,
+        start,
+    };
+    pool.install(|| run.run(resume))
+}
+
+/// Whether two paths name the same file (by name, after resolving the folder).
+fn same_file(a: &Path, b: &Path) -> bool {
+    let abs = |p: &Path| {
+        let dir = container::parent_dir(p);
+        std::fs::canonicalize(&dir)
+            .unwrap_or(dir)
+            .join(p.file_name().unwrap_or_default())
+    };
+    abs(a) == abs(b)
+}
+
+/// Example weights per class id and the rule's name.
+fn class_weights_of(
+    m: &Manifest,
+    positive: Option<u32>,
+    opts: &TrainOptions,
+) -> Result<(Vec<f64>, String)> {
+    let n_train = m.train_rows();
+    let counts: Vec<u64> = m.labels.iter().map(|l| l.train_rows).collect();
+    Ok(match &opts.class_weight {
         ClassWeight::None => (vec![1.0; m.labels.len()], "none".to_string()),
         ClassWeight::Balanced => {
             let w = match positive {
@@ -245,185 +474,540 @@ pub fn train(opts: &TrainOptions, log: Log) -> Result<TrainReport> {
                     })?;
                 w[i] = *x;
             }
-            let rule = list
-                .iter()
-                .map(|(l, x)| format!("{l}={x}"))
-                .collect::<Vec<_>>()
-                .join(",");
-            (w, rule)
+            (w, ClassWeight::Given(list.clone()).rule())
         }
-    };
-    let pool = rayon::ThreadPoolBuilder::new()
-        .num_threads(opts.threads.max(1))
-        .thread_name(|i| format!("tamis-train-{i}"))
-        .build()
-        .map_err(|e| Error::Invalid(format!("cannot start threads: {e}")))?;
-    pool.install(|| run(opts, &m, positive, class_weights, rule, log, start))
+    })
 }
 
-#[allow(clippy::too_many_arguments)]
-fn run(
-    opts: &TrainOptions,
+/// Refuse to resume against a dataset that no longer matches the checkpoint,
+/// saying what changed.
+fn check_dataset(
+    ck: &CheckpointMeta,
+    ck_path: &Path,
     m: &Manifest,
+    dir: &Path,
     positive: Option<u32>,
-    class_weights: Vec<f64>,
-    rule: String,
-    log: Log,
-    start: Instant,
-) -> Result<TrainReport> {
-    let n_labels = m.labels.len() as u32;
-    let dim = m.features.buckets() as usize;
-    let idf = if opts.idf {
-        Some(idf_of(&opts.dir, m)?)
-    } else {
-        None
+    allow_appended: bool,
+) -> Result<()> {
+    let refuse = |what: String| {
+        Err(Error::Mismatch {
+            path: ck_path.to_path_buf(),
+            what: format!(
+                "the dataset {} no longer matches this checkpoint: {what}",
+                dir.display()
+            ),
+        })
     };
-    let train = open_split(&opts.dir, m, Split::Train, n_labels)?;
-    let valid = open_split(&opts.dir, m, Split::Validation, n_labels)?;
-    let targets: Vec<Target> = match positive {
-        Some(p) => vec![Target::Class(p)],
-        None => (0..n_labels).map(Target::Class).collect(),
-    };
-    let model_labels: Vec<String> = match positive {
-        Some(p) => vec![m.labels[p as usize].name.clone()],
-        None => m.labels.iter().map(|l| l.name.clone()).collect(),
-    };
-    let mut trainer = Trainer::new(
-        dim,
-        targets,
-        class_weights.clone(),
-        opts.solver.clone(),
-        idf.clone(),
-    )?;
-    let lens: Vec<usize> = train.iter().map(|s| s.rows()).collect();
-    let mut epochs: Vec<EpochLog> = Vec::new();
-    let mut best_loss = f64::INFINITY;
-    let mut since_best = 0u32;
-    log(EPOCH_HEADER);
-    let mut batch = Vec::with_capacity(opts.solver.batch);
-    for epoch in 0..opts.epochs {
-        let t0 = Instant::now();
-        let average = epoch >= opts.solver.average_from;
-        let bar = progress(opts.progress, m.train_rows(), epoch + 1, opts.epochs);
-        let mut loss_sum = 0.0;
-        let (mut rows, mut nnz) = (0u64, 0u64);
-        for (gi, group) in order::groups(train.len(), opts.seed, epoch)
-            .iter()
-            .enumerate()
-        {
-            let view = Group::new(group.iter().map(|&i| &train[i]).collect());
-            let glens: Vec<usize> = group.iter().map(|&i| lens[i]).collect();
-            let mut inter = Interleave::new(&glens, opts.seed, epoch, gi);
-            while inter.remaining() > 0 {
-                inter.next_batch(opts.solver.batch, &mut batch);
-                let t = trainer.step(&view, &batch, average);
-                loss_sum += t.loss;
-                rows += t.rows;
-                nnz += t.nnz;
-                if let Some(b) = &bar {
-                    b.inc(t.rows);
-                }
-            }
-            debug_assert!(view.len() as u64 >= inter.taken());
+    let diff = ck.features.differences(&m.features);
+    if !diff.is_empty() {
+        return refuse(format!(
+            "its tokenizing and hashing settings changed ({})",
+            diff.join("; ")
+        ));
+    }
+    let names: Vec<&str> = m.labels.iter().map(|l| l.name.as_str()).collect();
+    let known: Vec<&str> = ck.labels.iter().map(|s| s.as_str()).collect();
+    if names.len() < known.len() || names[..known.len()] != known[..] {
+        return refuse(format!(
+            "its labels are {names:?}, the checkpoint's {known:?}"
+        ));
+    }
+    if names.len() > known.len() {
+        let new = &names[known.len()..];
+        if positive.is_none() {
+            return refuse(format!(
+                "new label(s) {new:?}: a one-vs-rest run cannot grow classes; train anew, or warm-start with --init-from"
+            ));
         }
-        if let Some(b) = bar {
-            b.finish_and_clear();
-        }
-        let train_secs = t0.elapsed().as_secs_f64();
-        let (w, b) = weights_of(&trainer.models);
-        // The optimum has λ/2·‖w‖² ≤ F(0) = mean cᵢ·loss(0) per model; an iterate
-        // a thousand times beyond that has left the optimum's region for good.
-        let max_c = class_weights.iter().copied().fold(1.0, f64::max);
-        let bound = 1e3 * trainer.models.len() as f64 * max_c * opts.solver.loss.value(0.0);
-        let reg = trainer.regularizer();
-        if !(reg.is_finite() && reg <= bound) || w.iter().chain(&b).any(|x| !x.is_finite()) {
-            return Err(Error::Invalid(format!(
-                "training diverged in epoch {}: the weights grew without bound; lower --eta0 or raise --lambda",
-                epoch + 1
-            )));
-        }
-        let eval = (!valid.is_empty()).then(|| {
-            evaluate(
-                &valid,
-                Weights {
-                    weights: &w,
-                    biases: &b,
-                    dim,
-                    idf: idf.as_deref(),
-                },
-                positive,
-                n_labels as usize,
-                opts.solver.loss,
-            )
-        });
-        let macro_f1 = eval.as_ref().filter(|_| positive.is_none()).map(|e| {
-            let pc = per_class(&e.confusion);
-            pc.iter().map(|x| x.2).sum::<f64>() / pc.len() as f64
-        });
-        let row = EpochLog {
-            epoch: epoch + 1,
-            objective: trainer.regularizer() + loss_sum / rows.max(1) as f64,
-            validation_loss: eval.as_ref().map(|e| e.loss),
-            validation_accuracy: eval.as_ref().map(|e| e.accuracy),
-            validation_macro_f1: macro_f1,
-            rows_per_second: rows as f64 / train_secs.max(1e-9),
-            nnz_per_second: nnz as f64 / train_secs.max(1e-9),
-            seconds: t0.elapsed().as_secs_f64(),
-        };
-        log(&epoch_line(&row));
-        epochs.push(row);
-        if let (Some(p), Some(e)) = (opts.patience, &eval) {
-            if e.loss < best_loss - 1e-12 {
-                best_loss = e.loss;
-                since_best = 0;
-            } else {
-                since_best += 1;
-                if since_best >= p {
-                    log(&format!(
-                        "stopping early: validation loss has not improved for {p} epoch(s)"
-                    ));
-                    break;
-                }
-            }
+        if !allow_appended {
+            return refuse(format!(
+                "new label(s) {new:?} came with appended data; pass --allow-appended to resume with them"
+            ));
         }
     }
-    let (weights, biases) = weights_of(&trainer.models);
-    let last_input = m
-        .batches
-        .last()
-        .map(|b| b.input.clone())
-        .unwrap_or_else(|| crate::input::InputSpec::tsv(1 << 20));
-    let model = Model {
-        meta: ModelMeta {
-            format: "tamis-model".into(),
-            written_by: format!("tamis {}", env!("CARGO_PKG_VERSION")),
-            features: m.features.clone(),
-            input: last_input,
-            labels: m.labels.iter().map(|l| l.name.clone()).collect(),
-            positive: positive.map(|p| m.labels[p as usize].name.clone()),
-            model_labels,
-            loss: opts.solver.loss,
-            training: TrainSettings {
-                solver: opts.solver.clone(),
-                epochs: opts.epochs,
-                seed: opts.seed,
-                class_weights,
-                class_weight_rule: rule,
-                idf: opts.idf,
-                patience: opts.patience,
+    if positive != ck.positive {
+        return refuse("its positive label changed".into());
+    }
+    for s in &ck.shards {
+        match m.shards.iter().find(|e| e.file == s.file) {
+            None => return refuse(format!("shard {} is gone", s.file)),
+            Some(e) if e.checksum != s.checksum || e.split != s.split => {
+                return refuse(format!(
+                    "shard {} changed (checksum {} now, {} then)",
+                    s.file, e.checksum, s.checksum
+                ))
+            }
+            Some(_) => {}
+        }
+    }
+    let added: Vec<&str> = m
+        .shards
+        .iter()
+        .filter(|e| {
+            // Validation shards are all listed; training shards of the epoch in
+            // progress are listed, so any other training shard is new.
+            !ck.shards.iter().any(|s| s.file == e.file)
+        })
+        .map(|e| e.file.as_str())
+        .collect();
+    if !added.is_empty() && !allow_appended {
+        return refuse(format!(
+            "{} shard(s) were added since ({}{}); pass --allow-appended to resume with them joining from the next epoch",
+            added.len(),
+            added[..added.len().min(3)].join(", "),
+            if added.len() > 3 { ", ..." } else { "" }
+        ));
+    }
+    Ok(())
+}
+
+/// Everything a run needs besides its mutable state.
+struct Run<'a> {
+    opts: &'a TrainOptions,
+    m: &'a Manifest,
+    positive: Option<u32>,
+    settings: TrainSettings,
+    ckpt_path: PathBuf,
+    log: Log,
+    start: Instant,
+}
+
+/// What a checkpoint needs from the loop.
+struct Snapshot<'a> {
+    trainer: &'a Trainer,
+    position: Position,
+    sums: EpochSums,
+    early: EarlyStop,
+    epochs: &'a [EpochLog],
+    shards: Vec<ShardRef>,
+}
+
+impl Run<'_> {
+    fn run(mut self, resume: Option<Resume>) -> Result<Outcome> {
+        let opts = self.opts;
+        let m = self.m;
+        let positive = self.positive;
+        let n_labels = m.labels.len() as u32;
+        let dim = m.features.buckets() as usize;
+        let (mut resume_ck, allow_appended) = match resume {
+            Some(r) => (Some(r.checkpoint), r.allow_appended),
+            None => (None, false),
+        };
+        let idf = match &mut resume_ck {
+            Some(ck) => ck.idf.take(),
+            None if self.settings.idf => Some(idf_of(&opts.dir, m)?),
+            None => None,
+        };
+        let train_entries: Vec<&ShardEntry> = m.shards_of(Split::Train).collect();
+        let train = open_shards(&opts.dir, m, &train_entries, n_labels)?;
+        let valid_entries: Vec<&ShardEntry> = m.shards_of(Split::Validation).collect();
+        let valid = open_shards(&opts.dir, m, &valid_entries, n_labels)?;
+        let all: Vec<usize> = (0..train.len()).collect();
+        let targets: Vec<Target> = match positive {
+            Some(p) => vec![Target::Class(p)],
+            None => (0..n_labels).map(Target::Class).collect(),
+        };
+        let model_labels: Vec<String> = match positive {
+            Some(p) => vec![m.labels[p as usize].name.clone()],
+            None => m.labels.iter().map(|l| l.name.clone()).collect(),
+        };
+        let s = self.settings.clone();
+        let mut trainer = Trainer::new(
+            dim,
+            targets,
+            s.class_weights.clone(),
+            s.solver.clone(),
+            idf.clone(),
+        )?;
+        // Where to begin, and the list of training shards of the first epoch.
+        let (mut first, mut first_sums, mut early, mut epochs, first_list) = match resume_ck {
+            Some(ck) => {
+                let meta = ck.meta;
+                trainer.set_models(ck.models)?;
+                trainer.t = meta.position.step;
+                let list: Vec<usize> = meta
+                    .shards
+                    .iter()
+                    .filter(|r| r.split == Split::Train)
+                    .filter_map(|r| train_entries.iter().position(|e| e.file == r.file))
+                    .collect();
+                (self.log)(&format!(
+                    "resuming at epoch {} of {}, step {}{}",
+                    meta.position.epoch.min(s.epochs - 1) + 1,
+                    s.epochs,
+                    meta.position.step,
+                    if allow_appended && list.len() < train.len() {
+                        format!(
+                            "; {} added shard(s) join from the next epoch",
+                            train.len() - list.len()
+                        )
+                    } else {
+                        String::new()
+                    }
+                ));
+                (
+                    Some(meta.position),
+                    meta.epoch_sums,
+                    meta.early_stop,
+                    meta.epochs,
+                    list,
+                )
+            }
+            None => {
+                if let Some(path) = &opts.init_from {
+                    let (models, t, warm) =
+                        warm_start(path, m, positive, &model_labels, opts.idf, &self.log)?;
+                    trainer.set_models(models)?;
+                    trainer.t = t;
+                    self.settings.init_from = Some(warm);
+                }
+                (
+                    None,
+                    EpochSums::default(),
+                    EarlyStop::default(),
+                    Vec::new(),
+                    all.clone(),
+                )
+            }
+        };
+        let s = &self.settings;
+        let lens: Vec<usize> = train.iter().map(|s| s.rows()).collect();
+        let every = Duration::from_secs_f64(opts.checkpoint_every);
+        let periodic = opts.checkpoint.is_some();
+        let stop_requested = || opts.stop.as_ref().is_some_and(|f| f.load(Ordering::SeqCst));
+        let mut last_ck = Instant::now();
+        let mut last_cost = None;
+        (self.log)(EPOCH_HEADER);
+        let mut batch = Vec::with_capacity(s.solver.batch);
+        let start_epoch = first.map_or(0, |p| p.epoch);
+        let mut done_early = s.patience.is_some_and(|p| early.since_best >= p);
+        for epoch in start_epoch..s.epochs {
+            if done_early {
+                break;
+            }
+            let resumed = first.take().filter(|p| p.epoch == epoch);
+            let list = if epoch == start_epoch {
+                &first_list
+            } else {
+                &all
+            };
+            let (g0, skip) = resumed.map_or((0, 0), |p| (p.group as usize, p.taken));
+            let mut sums = std::mem::take(&mut first_sums);
+            let (rows_before, nnz_before) = (sums.rows, sums.nnz);
+            let t0 = Instant::now();
+            let average = epoch >= s.solver.average_from;
+            let bar = progress(opts.progress, m.train_rows(), epoch + 1, s.epochs);
+            if let Some(b) = &bar {
+                b.set_position(sums.rows);
+            }
+            let shard_refs = |list: &[usize]| self.shard_refs(&train_entries, &valid_entries, list);
+            for (gi, group) in order::groups(list.len(), s.seed, epoch)
+                .iter()
+                .enumerate()
+                .skip(g0)
+            {
+                let view = Group::new(group.iter().map(|&i| &train[list[i]]).collect());
+                let glens: Vec<usize> = group.iter().map(|&i| lens[list[i]]).collect();
+                let mut inter = Interleave::new(&glens, s.seed, epoch, gi);
+                if gi == g0 {
+                    inter.skip(skip);
+                }
+                while inter.remaining() > 0 {
+                    inter.next_batch(s.solver.batch, &mut batch);
+                    let t = trainer.step(&view, &batch, average);
+                    sums.loss += t.loss;
+                    sums.rows += t.rows;
+                    sums.nnz += t.nnz;
+                    if let Some(b) = &bar {
+                        b.inc(t.rows);
+                    }
+                    let stop = stop_requested();
+                    if stop || (periodic && last_ck.elapsed() >= every) {
+                        let snap = Snapshot {
+                            trainer: &trainer,
+                            position: Position {
+                                epoch,
+                                group: gi as u32,
+                                taken: inter.taken(),
+                                step: trainer.t,
+                            },
+                            sums,
+                            early,
+                            epochs: &epochs,
+                            shards: shard_refs(list),
+                        };
+                        last_cost = Some(self.write_checkpoint(&snap)?);
+                        last_ck = Instant::now();
+                        if stop {
+                            if let Some(b) = bar {
+                                b.finish_and_clear();
+                            }
+                            return Ok(Outcome::Stopped {
+                                checkpoint: self.ckpt_path.clone(),
+                                position: snap.position,
+                            });
+                        }
+                    }
+                }
+            }
+            if let Some(b) = bar {
+                b.finish_and_clear();
+            }
+            let train_secs = t0.elapsed().as_secs_f64();
+            let (w, b) = weights_of(&trainer.models);
+            // The optimum has λ/2·‖w‖² ≤ F(0) = mean cᵢ·loss(0) per model; an
+            // iterate a thousand times beyond that has left the optimum's region
+            // for good.
+            let max_c = s.class_weights.iter().copied().fold(1.0, f64::max);
+            let bound = 1e3 * trainer.models.len() as f64 * max_c * s.solver.loss.value(0.0);
+            let reg = trainer.regularizer();
+            if !(reg.is_finite() && reg <= bound) || w.iter().chain(&b).any(|x| !x.is_finite()) {
+                return Err(Error::Invalid(format!(
+                    "training diverged in epoch {}: the weights grew without bound; lower --eta0 or raise --lambda",
+                    epoch + 1
+                )));
+            }
+            let eval = (!valid.is_empty()).then(|| {
+                evaluate(
+                    &valid,
+                    Weights {
+                        weights: &w,
+                        biases: &b,
+                        dim,
+                        idf: idf.as_deref(),
+                    },
+                    positive,
+                    n_labels as usize,
+                    s.solver.loss,
+                )
+            });
+            let macro_f1 = eval.as_ref().filter(|_| positive.is_none()).map(|e| {
+                let pc = per_class(&e.confusion);
+                pc.iter().map(|x| x.2).sum::<f64>() / pc.len() as f64
+            });
+            let (rows_here, nnz_here) = (sums.rows - rows_before, sums.nnz - nnz_before);
+            let row = EpochLog {
+                epoch: epoch + 1,
+                objective: trainer.regularizer() + sums.loss / sums.rows.max(1) as f64,
+                validation_loss: eval.as_ref().map(|e| e.loss),
+                validation_accuracy: eval.as_ref().map(|e| e.accuracy),
+                validation_macro_f1: macro_f1,
+                rows_per_second: rows_here as f64 / train_secs.max(1e-9),
+                nnz_per_second: nnz_here as f64 / train_secs.max(1e-9),
+                seconds: t0.elapsed().as_secs_f64(),
+            };
+            (self.log)(&epoch_line(&row));
+            epochs.push(row);
+            if let (Some(p), Some(e)) = (s.patience, &eval) {
+                if early.best_loss.is_none_or(|best| e.loss < best - 1e-12) {
+                    early.best_loss = Some(e.loss);
+                    early.since_best = 0;
+                } else {
+                    early.since_best += 1;
+                    if early.since_best >= p {
+                        (self.log)(&format!(
+                            "stopping early: validation loss has not improved for {p} epoch(s)"
+                        ));
+                        done_early = true;
+                    }
+                }
+            }
+            let stop = stop_requested();
+            if periodic || stop {
+                let snap = Snapshot {
+                    trainer: &trainer,
+                    position: Position {
+                        epoch: epoch + 1,
+                        group: 0,
+                        taken: 0,
+                        step: trainer.t,
+                    },
+                    sums: EpochSums::default(),
+                    early,
+                    epochs: &epochs,
+                    shards: shard_refs(&all),
+                };
+                last_cost = Some(self.write_checkpoint(&snap)?);
+                last_ck = Instant::now();
+                if stop && epoch + 1 < s.epochs && !done_early {
+                    return Ok(Outcome::Stopped {
+                        checkpoint: self.ckpt_path.clone(),
+                        position: snap.position,
+                    });
+                }
+            }
+        }
+        let (weights, biases) = weights_of(&trainer.models);
+        let last_input = m
+            .batches
+            .last()
+            .map(|b| b.input.clone())
+            .unwrap_or_else(|| crate::input::InputSpec::tsv(1 << 20));
+        let model = Model {
+            meta: ModelMeta {
+                format: "tamis-model".into(),
+                written_by: format!("tamis {}", env!("CARGO_PKG_VERSION")),
+                features: m.features.clone(),
+                input: last_input,
+                labels: m.labels.iter().map(|l| l.name.clone()).collect(),
+                positive: positive.map(|p| m.labels[p as usize].name.clone()),
+                model_labels,
+                loss: s.solver.loss,
+                training: self.settings.clone(),
+                epochs,
+                dataset_fingerprint: format!("{:016x}", m.fingerprint()),
+                steps: trainer.t,
             },
-            epochs,
-            dataset_fingerprint: format!("{:016x}", m.fingerprint()),
-        },
-        weights,
-        biases,
-        idf,
+            weights,
+            biases,
+            idf,
+        };
+        model.save(&opts.model)?;
+        Ok(Outcome::Finished(Box::new(TrainReport {
+            model,
+            seconds: self.start.elapsed().as_secs_f64(),
+            last_checkpoint: last_cost,
+        })))
+    }
+
+    /// The shards a checkpoint lists: the training shards of the epoch in
+    /// progress and every validation shard.
+    fn shard_refs(
+        &self,
+        train: &[&ShardEntry],
+        valid: &[&ShardEntry],
+        list: &[usize],
+    ) -> Vec<ShardRef> {
+        let mut idx = list.to_vec();
+        idx.sort_unstable();
+        idx.iter()
+            .map(|&i| train[i])
+            .chain(valid.iter().copied())
+            .map(|e| ShardRef {
+                file: e.file.clone(),
+                split: e.split,
+                checksum: e.checksum.clone(),
+            })
+            .collect()
+    }
+
+    fn write_checkpoint(&self, snap: &Snapshot<'_>) -> Result<WriteCost> {
+        let abs = |p: &Path| std::path::absolute(p).unwrap_or_else(|_| p.to_path_buf());
+        let meta = CheckpointMeta {
+            format: "tamis-checkpoint".into(),
+            written_by: format!("tamis {}", env!("CARGO_PKG_VERSION")),
+            dataset: abs(&self.opts.dir),
+            model: abs(&self.opts.model),
+            dataset_fingerprint: format!("{:016x}", self.m.fingerprint()),
+            features: self.m.features.clone(),
+            labels: self.m.labels.iter().map(|l| l.name.clone()).collect(),
+            positive: self.positive,
+            shards: snap.shards.clone(),
+            settings: self.settings.clone(),
+            position: snap.position,
+            epoch_sums: snap.sums,
+            early_stop: snap.early,
+            epochs: snap.epochs.to_vec(),
+        };
+        Checkpoint::write(
+            &self.ckpt_path,
+            &meta,
+            &snap.trainer.models,
+            snap.trainer.idf(),
+        )
+        .map_err(|e| match e {
+            Error::Io { path, cause } => Error::Invalid(format!(
+                "could not write the checkpoint {} ({}: {cause}); the previous checkpoint, if any, is intact",
+                self.ckpt_path.display(),
+                path.display()
+            )),
+            other => other,
+        })
+    }
+}
+
+/// Models to start from, the step count behind them and the record of where
+/// they came from.
+fn warm_start(
+    path: &Path,
+    m: &Manifest,
+    positive: Option<u32>,
+    model_labels: &[String],
+    idf: bool,
+    log: &Log,
+) -> Result<(Vec<Linear>, u64, WarmStart)> {
+    let model = Model::load(path)?;
+    let refuse = |what: String| {
+        Err(Error::Mismatch {
+            path: path.to_path_buf(),
+            what,
+        })
     };
-    model.save(&opts.model)?;
-    Ok(TrainReport {
-        model,
-        seconds: start.elapsed().as_secs_f64(),
-    })
+    let diff = model.meta.features.differences(&m.features);
+    if !diff.is_empty() {
+        return refuse(format!(
+            "cannot warm-start: the model's tokenizing and hashing settings differ from the dataset's ({})",
+            diff.join("; ")
+        ));
+    }
+    match (positive, &model.meta.positive) {
+        (Some(p), Some(mp)) if &m.labels[p as usize].name != mp => {
+            return refuse(format!(
+                "cannot warm-start: the model's positive label is {mp:?}, the dataset's {:?}",
+                m.labels[p as usize].name
+            ))
+        }
+        (Some(_), None) => {
+            return refuse("cannot warm-start a binary task from a one-vs-rest model".into())
+        }
+        (None, Some(_)) => {
+            return refuse("cannot warm-start a one-vs-rest task from a binary model".into())
+        }
+        _ => {}
+    }
+    if model.idf.is_some() != idf {
+        return refuse(format!(
+            "cannot warm-start: the model was trained {} --idf; train with the same choice",
+            if model.idf.is_some() {
+                "with"
+            } else {
+                "without"
+            }
+        ));
+    }
+    let models: Vec<Linear> = model_labels
+        .iter()
+        .map(
+            |name| match model.meta.model_labels.iter().position(|l| l == name) {
+                Some(k) => Linear::from_weights(model.weights_of(k), model.biases[k]),
+                None => {
+                    log(&format!(
+                        "class {name:?} is new: its model starts from zero"
+                    ));
+                    Linear::new(model.dim())
+                }
+            },
+        )
+        .collect();
+    for l in &model.meta.model_labels {
+        if !model_labels.contains(l) {
+            log(&format!(
+                "class {l:?} of {} is not in the dataset: dropped",
+                path.display()
+            ));
+        }
+    }
+    if model.meta.steps == 0 {
+        log(&format!(
+            "{} does not record its step count: step sizes restart from the first step",
+            path.display()
+        ));
+    }
+    let warm = WarmStart {
+        model: path.display().to_string(),
+        steps: model.meta.steps,
+    };
+    Ok((models, model.meta.steps, warm))
 }
 
 /// The averaged iterates of all models, flattened.

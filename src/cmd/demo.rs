@@ -95,6 +95,10 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
         patience: None,
         threads: opts.threads,
         progress: true,
+        checkpoint: None,
+        checkpoint_every: train::DEFAULT_CHECKPOINT_SECONDS,
+        init_from: None,
+        stop: None,
     };
     train::train(
         &topts,

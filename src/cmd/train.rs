@@ -1,38 +1,58 @@
-//! `tamis train`: fit a model on a dataset.
+//! `tamis train`: fit a model on a dataset, with checkpoints, resume and warm
+//! starts.
 
-use std::path::PathBuf;
+use std::path::{Path, PathBuf};
 use std::process::ExitCode;
+use std::sync::atomic::AtomicBool;
+use std::sync::Arc;
 
-use anyhow::Context;
+use anyhow::{bail, Context};
+use tamis::checkpoint::Checkpoint;
 use tamis::solver::{Loss, SolverConfig};
-use tamis::train::{self, ClassWeight, TrainOptions};
+use tamis::train::{self, ClassWeight, Outcome, Resume, TrainOptions};
+
+/// Exit status after an interruption that saved a checkpoint (128 + SIGINT).
+pub const INTERRUPTED: u8 = 130;
 
 /// Options of `tamis train`.
+///
+/// The solver options have no built-in defaults on the command line so that a
+/// resumed run can tell which were given (and must agree with the checkpoint);
+/// the defaults are applied by [`options`].
 #[derive(Debug, clap::Args)]
 pub struct Args {
-    /// Dataset folder written by `tamis ingest`.
-    #[arg(value_name = "DIR")]
-    pub dir: PathBuf,
+    /// Dataset folder written by `tamis ingest` (with --resume: defaults to the
+    /// checkpoint's).
+    #[arg(value_name = "DIR", required_unless_present = "resume")]
+    pub dir: Option<PathBuf>,
 
-    /// Where to write the model (replaced atomically).
-    #[arg(long, short = 'm', value_name = "FILE")]
-    pub model: PathBuf,
+    /// Where to write the model, replaced atomically (with --resume: defaults to
+    /// the checkpoint's).
+    #[arg(
+        long,
+        short = 'm',
+        value_name = "FILE",
+        required_unless_present = "resume"
+    )]
+    pub model: Option<PathBuf>,
 
-    /// Loss: hinge (max-margin), logistic (probabilities) or squared-hinge.
-    #[arg(long, value_enum, default_value_t = Loss::Hinge)]
-    pub loss: Loss,
+    /// Loss: hinge (max-margin), logistic (probabilities) or squared-hinge
+    /// [default: hinge].
+    #[arg(long, value_enum)]
+    pub loss: Option<Loss>,
 
-    /// Regularisation strength λ of λ/2·‖w‖²: larger means simpler models.
-    #[arg(long, default_value_t = 1e-5, value_name = "L")]
-    pub lambda: f64,
+    /// Regularisation strength λ of λ/2·‖w‖²: larger means simpler models
+    /// [default: 1e-5].
+    #[arg(long, value_name = "L")]
+    pub lambda: Option<f64>,
 
-    /// Passes over the training rows.
-    #[arg(long, default_value_t = 5, value_name = "E")]
-    pub epochs: u32,
+    /// Passes over the training rows [default: 5].
+    #[arg(long, value_name = "E")]
+    pub epochs: Option<u32>,
 
-    /// Rows per step; margins of a batch are computed in parallel.
-    #[arg(long, default_value_t = 64, value_name = "B")]
-    pub batch: usize,
+    /// Rows per step; margins of a batch are computed in parallel [default: 64].
+    #[arg(long, value_name = "B")]
+    pub batch: Option<usize>,
 
     /// Size of the first step on a row (a batch of B takes B times it); later
     /// steps are 1/(λ(t + t₀)) with t₀ = max(1, 1/(λ·η₀·B)) [default: 1, and 0.01
@@ -44,9 +64,10 @@ pub struct Args {
     #[arg(long)]
     pub project: bool,
 
-    /// Average the iterates from the start of this epoch (0 = from the first step).
-    #[arg(long, default_value_t = 1, value_name = "EPOCH")]
-    pub average_from: u32,
+    /// Average the iterates from the start of this epoch (0 = from the first
+    /// step) [default: 1, and 0 with --init-from].
+    #[arg(long, value_name = "EPOCH")]
+    pub average_from: Option<u32>,
 
     /// Example weights: `balanced` (inverse class frequency) or `LABEL=W,...`.
     #[arg(long, value_name = "RULE")]
@@ -60,9 +81,35 @@ pub struct Args {
     #[arg(long, value_name = "P")]
     pub patience: Option<u32>,
 
-    /// Seed of the order in which rows are visited.
-    #[arg(long, default_value_t = 1, value_name = "S")]
-    pub seed: u64,
+    /// Seed of the order in which rows are visited [default: 1].
+    #[arg(long, value_name = "S")]
+    pub seed: Option<u64>,
+
+    /// Save the whole training state to FILE every --checkpoint-every seconds and
+    /// at every epoch end (replaced atomically). Without it, only Ctrl-C or
+    /// SIGTERM saves a checkpoint, next to the model as MODEL.tmc.
+    #[arg(long, value_name = "FILE")]
+    pub checkpoint: Option<PathBuf>,
+
+    /// Seconds between checkpoints; 0 saves after every step (slow) [default: 60].
+    #[arg(long, value_name = "SECONDS")]
+    pub checkpoint_every: Option<f64>,
+
+    /// Continue the run saved in this checkpoint, with its settings; options
+    /// given again must agree with them. The final model equals that of a run
+    /// that was never interrupted.
+    #[arg(long, value_name = "FILE", conflicts_with = "init_from")]
+    pub resume: Option<PathBuf>,
+
+    /// With --resume: accept shards appended to the dataset since the
+    /// checkpoint; they join from the next epoch.
+    #[arg(long, requires = "resume")]
+    pub allow_appended: bool,
+
+    /// Start from the weights of an earlier model (yesterday's filter on today's
+    /// data); its tokenizing and hashing settings must match the dataset's.
+    #[arg(long, value_name = "MODEL")]
+    pub init_from: Option<PathBuf>,
 
     /// Threads [default: all cores]. The model does not depend on it.
     #[arg(long, short = 'j', value_name = "N")]
@@ -73,44 +120,219 @@ pub struct Args {
     pub quiet: bool,
 }
 
-/// Library options from the command line.
-pub fn options(a: &Args) -> TrainOptions {
-    TrainOptions {
-        dir: a.dir.clone(),
-        model: a.model.clone(),
+/// Library options for a fresh run (defaults applied).
+pub fn options(a: &Args) -> anyhow::Result<TrainOptions> {
+    let (Some(dir), Some(model)) = (&a.dir, &a.model) else {
+        bail!("train needs a dataset folder and --model (or --resume FILE)");
+    };
+    let loss = a.loss.unwrap_or(Loss::Hinge);
+    Ok(TrainOptions {
+        dir: dir.clone(),
+        model: model.clone(),
         solver: SolverConfig {
-            lambda: a.lambda,
-            loss: a.loss,
-            batch: a.batch,
-            eta0: a.eta0.unwrap_or(match a.loss {
-                Loss::SquaredHinge => 0.01,
-                _ => 1.0,
-            }),
+            lambda: a.lambda.unwrap_or(1e-5),
+            loss,
+            batch: a.batch.unwrap_or(64),
+            eta0: a.eta0.unwrap_or(default_eta0(loss)),
             project: a.project,
-            average_from: a.average_from,
+            average_from: a
+                .average_from
+                .unwrap_or(if a.init_from.is_some() { 0 } else { 1 }),
         },
-        epochs: a.epochs,
-        seed: a.seed,
+        epochs: a.epochs.unwrap_or(5),
+        seed: a.seed.unwrap_or(1),
         class_weight: a.class_weight.clone().unwrap_or(ClassWeight::None),
         idf: a.idf,
         patience: a.patience,
         threads: a.threads.unwrap_or_else(super::default_threads),
         progress: !a.quiet,
+        checkpoint: a.checkpoint.clone(),
+        checkpoint_every: a
+            .checkpoint_every
+            .unwrap_or(train::DEFAULT_CHECKPOINT_SECONDS),
+        init_from: a.init_from.clone(),
+        stop: None,
+    })
+}
+
+fn default_eta0(loss: Loss) -> f64 {
+    match loss {
+        Loss::SquaredHinge => 0.01,
+        _ => 1.0,
     }
+}
+
+/// Options that continue `ck`'s run; every setting given on the command line
+/// must agree with the stored one.
+fn resume_options(a: &Args, ck: &Checkpoint, path: &Path) -> anyhow::Result<TrainOptions> {
+    let mut o = TrainOptions::from_checkpoint(&ck.meta, path);
+    let s = &ck.meta.settings;
+    let mut clash = Vec::new();
+    let mut check = |flag: &str, given: Option<String>, stored: String| {
+        if let Some(g) = given {
+            if g != stored {
+                clash.push(format!("{flag} {g} (the checkpoint has {stored})"));
+            }
+        }
+    };
+    check(
+        "--loss",
+        a.loss.map(|l| l.name().into()),
+        s.solver.loss.name().into(),
+    );
+    check(
+        "--lambda",
+        a.lambda.map(|x| x.to_string()),
+        s.solver.lambda.to_string(),
+    );
+    check(
+        "--epochs",
+        a.epochs.map(|x| x.to_string()),
+        s.epochs.to_string(),
+    );
+    check(
+        "--batch",
+        a.batch.map(|x| x.to_string()),
+        s.solver.batch.to_string(),
+    );
+    check(
+        "--eta0",
+        a.eta0.map(|x| x.to_string()),
+        s.solver.eta0.to_string(),
+    );
+    check(
+        "--project",
+        a.project.then(|| "on".into()),
+        if s.solver.project { "on" } else { "off" }.into(),
+    );
+    check(
+        "--average-from",
+        a.average_from.map(|x| x.to_string()),
+        s.solver.average_from.to_string(),
+    );
+    check(
+        "--class-weight",
+        a.class_weight.as_ref().map(|c| c.rule()),
+        s.class_weight_rule.clone(),
+    );
+    check(
+        "--idf",
+        a.idf.then(|| "on".into()),
+        if s.idf { "on" } else { "off" }.into(),
+    );
+    check(
+        "--patience",
+        a.patience.map(|x| x.to_string()),
+        s.patience.map_or("none".into(), |x| x.to_string()),
+    );
+    check("--seed", a.seed.map(|x| x.to_string()), s.seed.to_string());
+    if !clash.is_empty() {
+        bail!(
+            "{}: options contradict the checkpoint's settings: {}; leave them out to resume with the stored ones",
+            path.display(),
+            clash.join(", ")
+        );
+    }
+    if let Some(d) = &a.dir {
+        o.dir = d.clone();
+    }
+    if let Some(m) = &a.model {
+        o.model = m.clone();
+    }
+    o.checkpoint = Some(a.checkpoint.clone().unwrap_or_else(|| path.to_path_buf()));
+    if let Some(e) = a.checkpoint_every {
+        o.checkpoint_every = e;
+    }
+    o.threads = a.threads.unwrap_or_else(super::default_threads);
+    o.progress = !a.quiet;
+    Ok(o)
+}
+
+/// Quote a path for a POSIX shell when it needs it.
+fn shell_quote(p: &Path) -> String {
+    let s = p.display().to_string();
+    if !s.is_empty()
+        && s.bytes()
+            .all(|b| b.is_ascii_alphanumeric() || b"/._-+=:,@".contains(&b))
+    {
+        s
+    } else {
+        format!("'{}'", s.replace('\'', r"'\''"))
+    }
+}
+
+/// SIGINT and SIGTERM set `flag`; a second one while it is set exits at once
+/// with status 130 (the last checkpoint written is intact: writes are atomic).
+fn install_stop_handler() -> anyhow::Result<Arc<AtomicBool>> {
+    use signal_hook::consts::{SIGINT, SIGTERM};
+    use signal_hook::flag;
+    let stop = Arc::new(AtomicBool::new(false));
+    for sig in [SIGINT, SIGTERM] {
+        // The order matters: the conditional exit is checked first, so the first
+        // signal only sets the flag and the second one exits.
+        flag::register_conditional_shutdown(sig, INTERRUPTED as i32, Arc::clone(&stop))
+            .context("cannot install the signal handler")?;
+        flag::register(sig, Arc::clone(&stop)).context("cannot install the signal handler")?;
+    }
+    Ok(stop)
 }
 
 /// Run `tamis train`.
 pub fn run(a: Args) -> anyhow::Result<ExitCode> {
-    let r = train::train(&options(&a), super::stderr_log(a.quiet))
-        .with_context(|| format!("training on {} failed", a.dir.display()))?;
-    if !a.quiet {
-        eprintln!(
-            "wrote {} ({} model(s) of {} features) in {:.2} s",
-            a.model.display(),
-            r.model.models(),
-            r.model.dim(),
-            r.seconds
-        );
+    let log = super::stderr_log(a.quiet);
+    let (mut opts, resume) = match &a.resume {
+        Some(path) => {
+            let ck = Checkpoint::load(path)
+                .with_context(|| format!("cannot resume from {}", path.display()))?;
+            let o = resume_options(&a, &ck, path)?;
+            let r = Resume {
+                checkpoint: ck,
+                path: path.clone(),
+                allow_appended: a.allow_appended,
+            };
+            (o, Some(r))
+        }
+        None => (options(&a)?, None),
+    };
+    opts.stop = Some(install_stop_handler()?);
+    let dir = opts.dir.clone();
+    let outcome = match resume {
+        Some(r) => train::resume(&opts, r, log),
+        None => train::train(&opts, log),
     }
-    Ok(ExitCode::SUCCESS)
+    .with_context(|| format!("training on {} failed", dir.display()))?;
+    match outcome {
+        Outcome::Finished(r) => {
+            if !a.quiet {
+                eprintln!(
+                    "wrote {} ({} model(s) of {} features) in {:.2} s",
+                    opts.model.display(),
+                    r.model.models(),
+                    r.model.dim(),
+                    r.seconds
+                );
+            }
+            Ok(ExitCode::SUCCESS)
+        }
+        Outcome::Stopped {
+            checkpoint,
+            position,
+        } => {
+            let abs = std::path::absolute(&checkpoint).unwrap_or(checkpoint);
+            eprintln!(
+                "interrupted: saved the training state at epoch {}, step {} to {}",
+                position.epoch + 1,
+                position.step,
+                abs.display()
+            );
+            eprintln!("resume with:");
+            let me = std::env::args().next().unwrap_or_else(|| "tamis".into());
+            eprintln!(
+                "  {} train --resume {}",
+                shell_quote(Path::new(&me)),
+                shell_quote(&abs)
+            );
+            Ok(ExitCode::from(INTERRUPTED))
+        }
+    }
 }

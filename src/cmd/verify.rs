@@ -13,7 +13,7 @@ use tamis::util::{bytes, thousands};
 #[derive(Debug, clap::Args)]
 pub struct Args {
     /// A dataset folder, or a single tamis file (shard, document frequencies,
-    /// model or manifest).
+    /// model, checkpoint or manifest).
     #[arg(value_name = "PATH")]
     pub path: PathBuf,
 }
@@ -42,8 +42,16 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
             p.display()
         );
     }
-    let head = std::fs::read(p).with_context(|| format!("cannot read {}", p.display()))?;
-    match container::peek_kind(&head) {
+    // The kind is in the first 16 bytes; only a manifest (JSON) is read whole here.
+    let mut head = [0u8; 16];
+    let got = {
+        use std::io::Read as _;
+        let mut f =
+            std::fs::File::open(p).with_context(|| format!("cannot read {}", p.display()))?;
+        f.read(&mut head)
+            .with_context(|| format!("cannot read {}", p.display()))?
+    };
+    match container::peek_kind(&head[..got]) {
         Some((Kind::Shard, _)) => {
             let s = Shard::read(p)?;
             s.verify(None)?;
@@ -68,16 +76,29 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
                 m.meta.labels.join(", ")
             );
         }
-        Some((k, _)) => bail!(
-            "{}: verifying {} files is not supported by this build",
-            p.display(),
-            k.name()
-        ),
+        Some((Kind::Checkpoint, _)) => {
+            let c = tamis::checkpoint::Checkpoint::verify(p)?;
+            let pos = c.position;
+            let epochs = c.settings.epochs;
+            outln!(
+                "ok: checkpoint {} ({}, step {}, dataset {}, model {})",
+                p.display(),
+                if pos.epoch >= epochs {
+                    format!("all {epochs} epochs done")
+                } else {
+                    format!("epoch {} of {epochs}", pos.epoch + 1)
+                },
+                thousands(pos.step),
+                c.dataset.display(),
+                c.model.display()
+            );
+        }
         None if p
             .file_name()
             .is_some_and(|n| n == dataset::manifest::MANIFEST_FILE) =>
         {
-            dataset::Manifest::from_bytes(&head, p)?;
+            let bytes = std::fs::read(p).with_context(|| format!("cannot read {}", p.display()))?;
+            dataset::Manifest::from_bytes(&bytes, p)?;
             outln!(
                 "ok: manifest {} (pass the folder to check its files too)",
                 p.display()

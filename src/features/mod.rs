@@ -141,6 +141,27 @@ impl FeatureConfig {
     pub fn buckets(&self) -> u64 {
         1u64 << self.log2_buckets
     }
+
+    /// The settings that differ from `other`, one `name: ours vs theirs` each
+    /// (empty when equal). Compares every serialised field, so a field added
+    /// later is covered too.
+    pub fn differences(&self, other: &FeatureConfig) -> Vec<String> {
+        let a = serde_json::to_value(self).expect("settings serialise");
+        let b = serde_json::to_value(other).expect("settings serialise");
+        let (Some(a), Some(b)) = (a.as_object(), b.as_object()) else {
+            return Vec::new();
+        };
+        let mut keys: Vec<&String> = a.keys().chain(b.keys()).collect();
+        keys.sort();
+        keys.dedup();
+        let null = serde_json::Value::Null;
+        keys.into_iter()
+            .filter_map(|k| {
+                let (x, y) = (a.get(k).unwrap_or(&null), b.get(k).unwrap_or(&null));
+                (x != y).then(|| format!("{k}: {x} vs {y}"))
+            })
+            .collect()
+    }
 }
 
 /// Bucket and sign of a 64-bit feature hash.

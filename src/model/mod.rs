@@ -85,6 +85,18 @@ pub struct TrainSettings {
     pub idf: bool,
     /// Early stopping patience, if any.
     pub patience: Option<u32>,
+    /// The model this run started from (`--init-from`), if any.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub init_from: Option<WarmStart>,
+}
+
+/// Where a warm start came from.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct WarmStart {
+    /// The model file as given.
+    pub model: String,
+    /// Solver steps behind that model; the step counter continues from here.
+    pub steps: u64,
 }
 
 /// The metadata section of a model.
@@ -112,6 +124,10 @@ pub struct ModelMeta {
     pub epochs: Vec<EpochLog>,
     /// Fingerprint of the dataset trained on (hex).
     pub dataset_fingerprint: String,
+    /// Solver steps behind the weights, counting those of a warm start's model
+    /// (0 in models written before this was recorded).
+    #[serde(default)]
+    pub steps: u64,
 }
 
 /// A loaded model.
