@@ -862,7 +862,14 @@ impl Run<'_> {
             biases,
             idf,
         };
-        model.save(&opts.model)?;
+        model.save(&opts.model).map_err(|e| match e {
+            Error::Io { path, cause } => Error::Invalid(format!(
+                "could not write the model {} ({}: {cause}); the previous model, if any, is intact",
+                opts.model.display(),
+                path.display()
+            )),
+            other => other,
+        })?;
         Ok(Outcome::Finished(Box::new(TrainReport {
             model,
             seconds: self.start.elapsed().as_secs_f64(),
