@@ -311,6 +311,14 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
                     r.model.dim(),
                     r.seconds
                 );
+                if let (Some(c), Some(path)) = (r.last_checkpoint, &opts.checkpoint) {
+                    eprintln!(
+                        "checkpoint {} ({}, last write {:.0} ms)",
+                        path.display(),
+                        tamis::util::bytes(c.bytes),
+                        c.seconds * 1e3
+                    );
+                }
             }
             Ok(ExitCode::SUCCESS)
         }
