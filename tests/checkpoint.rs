@@ -738,6 +738,36 @@ fn a_killed_ingest_leaves_the_previous_dataset_and_reruns_cleanly() {
         tamis(["verify", s(&ds)]).ok();
     }
     assert!(killed >= 1, "ingest finished before any kill");
+    // A first ingest killed part-way leaves no manifest (or a complete dataset);
+    // running it again into the same folder works without clean-up.
+    let fresh = t.path().join("fresh");
+    for delay_ms in [20u64, 80, 200] {
+        let _ = std::fs::remove_dir_all(&fresh);
+        let mut child = Command::new(bin())
+            .args(["ingest", s(&day2), "--out", s(&fresh), "-q", "--no-sync"])
+            .stdout(Stdio::null())
+            .stderr(Stdio::null())
+            .spawn()
+            .unwrap();
+        std::thread::sleep(Duration::from_millis(delay_ms));
+        let finished = child.try_wait().unwrap().is_some();
+        child.kill().ok();
+        child.wait().unwrap();
+        if finished {
+            continue;
+        }
+        if fresh.join("manifest.json").exists() {
+            tamis(["verify", s(&fresh)]).ok();
+            continue;
+        }
+        ingest(&[&day2], &fresh, &["-q"]).ok();
+        tamis(["verify", s(&fresh)]).ok();
+        assert!(
+            names_in(&fresh).iter().all(|n| !n.contains(".tmp-")),
+            "{:?}",
+            names_in(&fresh)
+        );
+    }
     ingest(&[&day2], &ds, &["--append", "-q"]).ok();
     tamis(["verify", s(&ds)]).ok();
     // The same as an append that was never interrupted.
