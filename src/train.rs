@@ -26,7 +26,7 @@ use crate::checkpoint::{
 use crate::container;
 use crate::dataset::{self, docfreq::DocFreq, Log, Manifest, ShardEntry, Split};
 use crate::error::{Error, Result};
-use crate::eval::{evaluate, per_class, Weights};
+use crate::eval::{evaluate, per_class, Evaluation, Weights};
 use crate::model::{EpochLog, Model, ModelMeta, TrainSettings, WarmStart};
 use crate::shard::Shard;
 use crate::solver::order::{self, Group, Interleave};
@@ -217,6 +217,45 @@ pub fn task_of(m: &Manifest) -> Result<Option<u32>> {
     }
 }
 
+/// The task of a dataset, after checking that it can be trained: training rows
+/// of every class of a one-vs-rest task, of both sides of a binary one.
+pub fn trainable_task(m: &Manifest, dir: &Path) -> Result<Option<u32>> {
+    let positive = task_of(m)?;
+    let n_train = m.train_rows();
+    if n_train == 0 {
+        return Err(Error::Invalid(format!(
+            "{}: the dataset has no training rows",
+            dir.display()
+        )));
+    }
+    let counts: Vec<u64> = m.labels.iter().map(|l| l.train_rows).collect();
+    match positive {
+        Some(p) => {
+            let pos = counts[p as usize];
+            if pos == 0 || pos == n_train {
+                return Err(Error::Invalid(format!(
+                    "a binary task needs training rows of both classes; {:?} has {pos} of {n_train}",
+                    m.labels[p as usize].name
+                )));
+            }
+        }
+        None => {
+            if m.labels.len() < 2 {
+                return Err(Error::Invalid(
+                    "the dataset has a single label: there is nothing to tell apart".into(),
+                ));
+            }
+            if let Some(l) = m.labels.iter().find(|l| l.train_rows == 0) {
+                return Err(Error::Invalid(format!(
+                    "class {:?} has no training rows; drop it or add data",
+                    l.name
+                )));
+            }
+        }
+    }
+    Ok(positive)
+}
+
 /// idf factor per bucket from the dataset's document frequencies:
 /// `ln((1 + N)/(1 + df)) + 1` (the smoothed form, common practice).
 pub fn idf_of(dir: &Path, m: &Manifest) -> Result<Vec<f32>> {
@@ -343,39 +382,7 @@ fn begin(opts: &TrainOptions, resume: Option<Resume>, log: Log) -> Result<Outcom
     container::remove_stale_temps(&ckpt_path);
 
     let m = Manifest::load(&opts.dir)?;
-    let positive = task_of(&m)?;
-    let n_train = m.train_rows();
-    if n_train == 0 {
-        return Err(Error::Invalid(format!(
-            "{}: the dataset has no training rows",
-            opts.dir.display()
-        )));
-    }
-    let counts: Vec<u64> = m.labels.iter().map(|l| l.train_rows).collect();
-    match positive {
-        Some(p) => {
-            let pos = counts[p as usize];
-            if pos == 0 || pos == n_train {
-                return Err(Error::Invalid(format!(
-                    "a binary task needs training rows of both classes; {:?} has {pos} of {n_train}",
-                    m.labels[p as usize].name
-                )));
-            }
-        }
-        None => {
-            if m.labels.len() < 2 {
-                return Err(Error::Invalid(
-                    "the dataset has a single label: there is nothing to tell apart".into(),
-                ));
-            }
-            if let Some(l) = m.labels.iter().find(|l| l.train_rows == 0) {
-                return Err(Error::Invalid(format!(
-                    "class {:?} has no training rows; drop it or add data",
-                    l.name
-                )));
-            }
-        }
-    }
+    let positive = trainable_task(&m, &opts.dir)?;
     let settings = match &resume {
         Some(r) => {
             check_dataset(
@@ -678,9 +685,14 @@ impl Run<'_> {
         let mut last_ck = Instant::now();
         let mut last_cost = None;
         (self.log)(EPOCH_HEADER);
-        let mut batch = Vec::with_capacity(s.solver.batch);
         let start_epoch = first.map_or(0, |p| p.epoch);
         let mut done_early = s.patience.is_some_and(|p| early.since_best >= p);
+        let valid_set = Validation {
+            shards: &valid,
+            positive,
+            classes: n_labels as usize,
+            idf: idf.as_deref(),
+        };
         for epoch in start_epoch..s.epochs {
             if done_early {
                 break;
@@ -691,7 +703,7 @@ impl Run<'_> {
             } else {
                 &all
             };
-            let (g0, skip) = resumed.map_or((0, 0), |p| (p.group as usize, p.taken));
+            let from = resumed.map_or((0, 0), |p| (p.group as usize, p.taken));
             let mut sums = std::mem::take(&mut first_sums);
             let (rows_before, nnz_before) = (sums.rows, sums.nnz);
             let t0 = Instant::now();
@@ -701,101 +713,60 @@ impl Run<'_> {
                 b.set_position(sums.rows);
             }
             let shard_refs = |list: &[usize]| self.shard_refs(&train_entries, &valid_entries, list);
-            for (gi, group) in order::groups(list.len(), s.seed, epoch)
-                .iter()
-                .enumerate()
-                .skip(g0)
-            {
-                let view = Group::new(group.iter().map(|&i| &train[list[i]]).collect());
-                let glens: Vec<usize> = group.iter().map(|&i| lens[list[i]]).collect();
-                let mut inter = Interleave::new(&glens, s.seed, epoch, gi);
-                if gi == g0 {
-                    inter.skip(skip);
+            let mut stopped = None;
+            let sweep = Sweep {
+                shards: &train,
+                lens: &lens,
+                list,
+                seed: s.seed,
+                epoch,
+                batch: s.solver.batch,
+            };
+            sweep.run(from, |view, batch, group, taken| {
+                let t = trainer.step(view, batch, average);
+                sums.add(&t);
+                if let Some(b) = &bar {
+                    b.inc(t.rows);
                 }
-                while inter.remaining() > 0 {
-                    inter.next_batch(s.solver.batch, &mut batch);
-                    let t = trainer.step(&view, &batch, average);
-                    sums.loss += t.loss;
-                    sums.rows += t.rows;
-                    sums.nnz += t.nnz;
-                    if let Some(b) = &bar {
-                        b.inc(t.rows);
-                    }
-                    let stop = stop_requested();
-                    if stop || (periodic && last_ck.elapsed() >= every) {
-                        let snap = Snapshot {
-                            trainer: &trainer,
-                            position: Position {
-                                epoch,
-                                group: gi as u32,
-                                taken: inter.taken(),
-                                step: trainer.t,
-                            },
-                            sums,
-                            early,
-                            epochs: &epochs,
-                            shards: shard_refs(list),
-                        };
-                        last_cost = Some(self.write_checkpoint(&snap)?);
-                        last_ck = Instant::now();
-                        if stop {
-                            if let Some(b) = bar {
-                                b.finish_and_clear();
-                            }
-                            return Ok(Outcome::Stopped {
-                                checkpoint: self.ckpt_path.clone(),
-                                position: snap.position,
-                            });
-                        }
+                let stop = stop_requested();
+                if stop || (periodic && last_ck.elapsed() >= every) {
+                    let snap = Snapshot {
+                        trainer: &trainer,
+                        position: Position {
+                            epoch,
+                            group: group as u32,
+                            taken,
+                            step: trainer.t,
+                        },
+                        sums,
+                        early,
+                        epochs: &epochs,
+                        shards: shard_refs(list),
+                    };
+                    last_cost = Some(self.write_checkpoint(&snap)?);
+                    last_ck = Instant::now();
+                    if stop {
+                        stopped = Some(snap.position);
+                        return Ok(false);
                     }
                 }
-            }
+                Ok(true)
+            })?;
             if let Some(b) = bar {
                 b.finish_and_clear();
             }
-            let train_secs = t0.elapsed().as_secs_f64();
-            let (w, b) = weights_of(&trainer.models);
-            // The optimum has λ/2·‖w‖² ≤ F(0) = mean cᵢ·loss(0) per model; an
-            // iterate a thousand times beyond that has left the optimum's region
-            // for good.
-            let max_c = s.class_weights.iter().copied().fold(1.0, f64::max);
-            let bound = 1e3 * trainer.models.len() as f64 * max_c * s.solver.loss.value(0.0);
-            let reg = trainer.regularizer();
-            if !(reg.is_finite() && reg <= bound) || w.iter().chain(&b).any(|x| !x.is_finite()) {
-                return Err(Error::Invalid(format!(
-                    "training diverged in epoch {}: the weights grew without bound; lower --eta0 or raise --lambda",
-                    epoch + 1
-                )));
+            if let Some(position) = stopped {
+                return Ok(Outcome::Stopped {
+                    checkpoint: self.ckpt_path.clone(),
+                    position,
+                });
             }
-            let eval = (!valid.is_empty()).then(|| {
-                evaluate(
-                    &valid,
-                    Weights {
-                        weights: &w,
-                        biases: &b,
-                        dim,
-                        idf: idf.as_deref(),
-                    },
-                    positive,
-                    n_labels as usize,
-                    s.solver.loss,
-                )
-            });
-            let macro_f1 = eval.as_ref().filter(|_| positive.is_none()).map(|e| {
-                let pc = per_class(&e.confusion);
-                pc.iter().map(|x| x.2).sum::<f64>() / pc.len() as f64
-            });
-            let (rows_here, nnz_here) = (sums.rows - rows_before, sums.nnz - nnz_before);
-            let row = EpochLog {
-                epoch: epoch + 1,
-                objective: trainer.regularizer() + sums.loss / sums.rows.max(1) as f64,
-                validation_loss: eval.as_ref().map(|e| e.loss),
-                validation_accuracy: eval.as_ref().map(|e| e.accuracy),
-                validation_macro_f1: macro_f1,
-                rows_per_second: rows_here as f64 / train_secs.max(1e-9),
-                nnz_per_second: nnz_here as f64 / train_secs.max(1e-9),
+            let rate = Rate {
+                rows: sums.rows - rows_before,
+                nnz: sums.nnz - nnz_before,
                 seconds: t0.elapsed().as_secs_f64(),
             };
+            let (row, eval) = end_epoch(&trainer, &valid_set, epoch, &sums, rate, t0)?;
             (self.log)(&epoch_line(&row));
             epochs.push(row);
             if let (Some(p), Some(e)) = (s.patience, &eval) {
@@ -837,31 +808,7 @@ impl Run<'_> {
                 }
             }
         }
-        let (weights, biases) = weights_of(&trainer.models);
-        let last_input = m
-            .batches
-            .last()
-            .map(|b| b.input.clone())
-            .unwrap_or_else(|| crate::input::InputSpec::tsv(1 << 20));
-        let model = Model {
-            meta: ModelMeta {
-                format: "tamis-model".into(),
-                written_by: format!("tamis {}", env!("CARGO_PKG_VERSION")),
-                features: m.features.clone(),
-                input: last_input,
-                labels: m.labels.iter().map(|l| l.name.clone()).collect(),
-                positive: positive.map(|p| m.labels[p as usize].name.clone()),
-                model_labels,
-                loss: s.solver.loss,
-                training: self.settings.clone(),
-                epochs,
-                dataset_fingerprint: format!("{:016x}", m.fingerprint()),
-                steps: trainer.t,
-            },
-            weights,
-            biases,
-            idf,
-        };
+        let model = build_model(m, positive, self.settings.clone(), epochs, &trainer);
         model.save(&opts.model).map_err(|e| match e {
             Error::Io { path, cause } => Error::Invalid(format!(
                 "could not write the model {} ({}: {cause}); the previous model, if any, is intact",
@@ -1015,6 +962,169 @@ fn warm_start(
         steps: model.meta.steps,
     };
     Ok((models, model.meta.steps, warm))
+}
+
+/// The mini-batches of one epoch over some of a dataset's training shards, in
+/// the seeded order of [`order`].
+pub(crate) struct Sweep<'a> {
+    /// All training shards.
+    pub shards: &'a [Shard],
+    /// Their row counts.
+    pub lens: &'a [usize],
+    /// The shards of this epoch (indices into `shards`).
+    pub list: &'a [usize],
+    /// Seed of the order.
+    pub seed: u64,
+    /// The epoch (0-based).
+    pub epoch: u32,
+    /// Rows per batch.
+    pub batch: usize,
+}
+
+impl Sweep<'_> {
+    /// Call `f(view, batch, group, taken)` for every batch from group `from.0`
+    /// after `from.1` of its rows: `view` holds the group's shards, `batch` row
+    /// ids in it, `taken` the rows of the group drawn so far. A batch never spans
+    /// two groups. `f` returning `Ok(false)` ends the sweep early.
+    pub fn run<F>(&self, from: (usize, u64), mut f: F) -> Result<()>
+    where
+        F: FnMut(&Group<'_, Shard>, &[usize], usize, u64) -> Result<bool>,
+    {
+        let mut batch = Vec::with_capacity(self.batch);
+        let groups = order::groups(self.list.len(), self.seed, self.epoch);
+        for (gi, group) in groups.iter().enumerate().skip(from.0) {
+            let view = Group::new(group.iter().map(|&i| &self.shards[self.list[i]]).collect());
+            let glens: Vec<usize> = group.iter().map(|&i| self.lens[self.list[i]]).collect();
+            let mut inter = Interleave::new(&glens, self.seed, self.epoch, gi);
+            if gi == from.0 {
+                inter.skip(from.1);
+            }
+            while inter.remaining() > 0 {
+                inter.next_batch(self.batch, &mut batch);
+                if !f(&view, &batch, gi, inter.taken())? {
+                    return Ok(());
+                }
+            }
+        }
+        Ok(())
+    }
+}
+
+/// The validation split and what scoring it needs.
+pub(crate) struct Validation<'a> {
+    /// Validation shards (may be empty).
+    pub shards: &'a [Shard],
+    /// Positive class id of a binary task.
+    pub positive: Option<u32>,
+    /// Classes of the dataset.
+    pub classes: usize,
+    /// idf factors in use.
+    pub idf: Option<&'a [f32]>,
+}
+
+/// Rows, nonzeros and seconds of the training part of an epoch (for the table).
+#[derive(Debug, Clone, Copy)]
+pub(crate) struct Rate {
+    /// Rows trained on in this process.
+    pub rows: u64,
+    /// Nonzeros trained on in this process.
+    pub nnz: u64,
+    /// Seconds it took.
+    pub seconds: f64,
+}
+
+/// After an epoch: refuse a diverged iterate, evaluate the averaged iterate on
+/// the validation split, and make the epoch's log row.
+pub(crate) fn end_epoch(
+    trainer: &Trainer,
+    valid: &Validation<'_>,
+    epoch: u32,
+    sums: &EpochSums,
+    rate: Rate,
+    t0: Instant,
+) -> Result<(EpochLog, Option<Evaluation>)> {
+    let cfg = &trainer.cfg;
+    let (w, b) = weights_of(&trainer.models);
+    // The optimum has λ/2·‖w‖² ≤ F(0) = mean cᵢ·loss(0) per model; an iterate a
+    // thousand times beyond that has left the optimum's region for good.
+    let max_c = trainer.class_weights.iter().copied().fold(1.0, f64::max);
+    let bound = 1e3 * trainer.models.len() as f64 * max_c * cfg.loss.value(0.0);
+    let reg = trainer.regularizer();
+    if !(reg.is_finite() && reg <= bound) || w.iter().chain(&b).any(|x| !x.is_finite()) {
+        return Err(Error::Invalid(format!(
+            "training diverged in epoch {}: the weights grew without bound; lower --eta0 or raise --lambda",
+            epoch + 1
+        )));
+    }
+    let dim = trainer.models[0].dim();
+    let eval = (!valid.shards.is_empty()).then(|| {
+        evaluate(
+            valid.shards,
+            Weights {
+                weights: &w,
+                biases: &b,
+                dim,
+                idf: valid.idf,
+            },
+            valid.positive,
+            valid.classes,
+            cfg.loss,
+        )
+    });
+    let macro_f1 = eval.as_ref().filter(|_| valid.positive.is_none()).map(|e| {
+        let pc = per_class(&e.confusion);
+        pc.iter().map(|x| x.2).sum::<f64>() / pc.len() as f64
+    });
+    let row = EpochLog {
+        epoch: epoch + 1,
+        objective: reg + sums.loss / sums.rows.max(1) as f64,
+        validation_loss: eval.as_ref().map(|e| e.loss),
+        validation_accuracy: eval.as_ref().map(|e| e.accuracy),
+        validation_macro_f1: macro_f1,
+        rows_per_second: rate.rows as f64 / rate.seconds.max(1e-9),
+        nnz_per_second: rate.nnz as f64 / rate.seconds.max(1e-9),
+        seconds: t0.elapsed().as_secs_f64(),
+    };
+    Ok((row, eval))
+}
+
+/// The model file of a trainer's averaged iterates.
+pub(crate) fn build_model(
+    m: &Manifest,
+    positive: Option<u32>,
+    training: TrainSettings,
+    epochs: Vec<EpochLog>,
+    trainer: &Trainer,
+) -> Model {
+    let (weights, biases) = weights_of(&trainer.models);
+    let input = m
+        .batches
+        .last()
+        .map(|b| b.input.clone())
+        .unwrap_or_else(|| crate::input::InputSpec::tsv(1 << 20));
+    let model_labels = match positive {
+        Some(p) => vec![m.labels[p as usize].name.clone()],
+        None => m.labels.iter().map(|l| l.name.clone()).collect(),
+    };
+    Model {
+        meta: ModelMeta {
+            format: "tamis-model".into(),
+            written_by: format!("tamis {}", env!("CARGO_PKG_VERSION")),
+            features: m.features.clone(),
+            input,
+            labels: m.labels.iter().map(|l| l.name.clone()).collect(),
+            positive: positive.map(|p| m.labels[p as usize].name.clone()),
+            model_labels,
+            loss: training.solver.loss,
+            training,
+            epochs,
+            dataset_fingerprint: format!("{:016x}", m.fingerprint()),
+            steps: trainer.t,
+        },
+        weights,
+        biases,
+        idf: trainer.idf().map(|x| x.to_vec()),
+    }
 }
 
 /// The averaged iterates of all models, flattened.

@@ -92,6 +92,15 @@ pub struct EpochSums {
     pub nnz: u64,
 }
 
+impl EpochSums {
+    /// Add what a step saw.
+    pub fn add(&mut self, t: &crate::solver::Tally) {
+        self.loss += t.loss;
+        self.rows += t.rows;
+        self.nnz += t.nnz;
+    }
+}
+
 /// Early-stopping state.
 #[derive(Debug, Clone, Copy, Default, PartialEq, Serialize, Deserialize)]
 pub struct EarlyStop {
