@@ -54,6 +54,7 @@ pub mod shard;
 pub mod solver;
 pub mod synth;
 pub mod train;
+pub mod tune;
 pub mod util;
 
 pub use error::{Error, Result};

@@ -30,7 +30,7 @@ use crate::eval::{evaluate, per_class, Evaluation, Weights};
 use crate::model::{EpochLog, Model, ModelMeta, TrainSettings, WarmStart};
 use crate::shard::Shard;
 use crate::solver::order::{self, Group, Interleave};
-use crate::solver::{Linear, SolverConfig, Target, Trainer};
+use crate::solver::{Linear, Loss, SolverConfig, Target, Trainer};
 use crate::util;
 
 /// How example weights cᵢ are chosen.
@@ -299,7 +299,7 @@ pub fn epoch_line(e: &EpochLog) -> String {
     )
 }
 
-fn open_shards(
+pub(crate) fn open_shards(
     dir: &Path,
     m: &Manifest,
     entries: &[&ShardEntry],
@@ -337,7 +337,7 @@ pub fn resume(opts: &TrainOptions, resume: Resume, log: Log) -> Result<Outcome> 
 }
 
 /// Take a lock next to `dest`, explaining an unwritable folder.
-fn lock_next_to(dest: &Path, what: &str) -> Result<util::Lock> {
+pub(crate) fn lock_next_to(dest: &Path, what: &str) -> Result<util::Lock> {
     let mut name = dest.as_os_str().to_owned();
     name.push(".lock");
     util::Lock::acquire(Path::new(&name)).map_err(|e| match e {
@@ -396,7 +396,8 @@ fn begin(opts: &TrainOptions, resume: Option<Resume>, log: Log) -> Result<Outcom
             r.checkpoint.meta.settings.clone()
         }
         None => {
-            let (class_weights, class_weight_rule) = class_weights_of(&m, positive, opts)?;
+            let (class_weights, class_weight_rule) =
+                class_weights_of(&m, positive, &opts.class_weight)?;
             TrainSettings {
                 solver: opts.solver.clone(),
                 epochs: opts.epochs,
@@ -438,14 +439,14 @@ fn same_file(a: &Path, b: &Path) -> bool {
 }
 
 /// Example weights per class id and the rule's name.
-fn class_weights_of(
+pub(crate) fn class_weights_of(
     m: &Manifest,
     positive: Option<u32>,
-    opts: &TrainOptions,
+    rule: &ClassWeight,
 ) -> Result<(Vec<f64>, String)> {
     let n_train = m.train_rows();
     let counts: Vec<u64> = m.labels.iter().map(|l| l.train_rows).collect();
-    Ok(match &opts.class_weight {
+    Ok(match rule {
         ClassWeight::None => (vec![1.0; m.labels.len()], "none".to_string()),
         ClassWeight::Balanced => {
             let w = match positive {
@@ -766,7 +767,15 @@ impl Run<'_> {
                 nnz: sums.nnz - nnz_before,
                 seconds: t0.elapsed().as_secs_f64(),
             };
-            let (row, eval) = end_epoch(&trainer, &valid_set, epoch, &sums, rate, t0)?;
+            let (w, b) = weights_of(&trainer.models);
+            let it = Iterate {
+                weights: &w,
+                biases: &b,
+                regularizer: trainer.regularizer(),
+                loss: s.solver.loss,
+                class_weights: &s.class_weights,
+            };
+            let (row, eval) = end_epoch(&it, &valid_set, epoch, &sums, rate, t0)?;
             (self.log)(&epoch_line(&row));
             epochs.push(row);
             if let (Some(p), Some(e)) = (s.patience, &eval) {
@@ -808,7 +817,15 @@ impl Run<'_> {
                 }
             }
         }
-        let model = build_model(m, positive, self.settings.clone(), epochs, &trainer);
+        let model = build_model(
+            m,
+            positive,
+            self.settings.clone(),
+            epochs,
+            weights_of(&trainer.models),
+            trainer.t,
+            idf,
+        );
         model.save(&opts.model).map_err(|e| match e {
             Error::Io { path, cause } => Error::Invalid(format!(
                 "could not write the model {} ({}: {cause}); the previous model, if any, is intact",
@@ -1033,42 +1050,54 @@ pub(crate) struct Rate {
     pub seconds: f64,
 }
 
+/// The averaged iterates of a task's models after an epoch, and what judging
+/// them needs.
+pub(crate) struct Iterate<'a> {
+    /// `models × dim` averaged weights.
+    pub weights: &'a [f32],
+    /// One averaged bias per model.
+    pub biases: &'a [f32],
+    /// λ/2·‖w‖² of the current iterates, summed over models.
+    pub regularizer: f64,
+    /// The loss trained with.
+    pub loss: Loss,
+    /// Example weight per class id.
+    pub class_weights: &'a [f64],
+}
+
 /// After an epoch: refuse a diverged iterate, evaluate the averaged iterate on
 /// the validation split, and make the epoch's log row.
 pub(crate) fn end_epoch(
-    trainer: &Trainer,
+    it: &Iterate<'_>,
     valid: &Validation<'_>,
     epoch: u32,
     sums: &EpochSums,
     rate: Rate,
     t0: Instant,
 ) -> Result<(EpochLog, Option<Evaluation>)> {
-    let cfg = &trainer.cfg;
-    let (w, b) = weights_of(&trainer.models);
+    let (w, b, reg) = (it.weights, it.biases, it.regularizer);
     // The optimum has λ/2·‖w‖² ≤ F(0) = mean cᵢ·loss(0) per model; an iterate a
     // thousand times beyond that has left the optimum's region for good.
-    let max_c = trainer.class_weights.iter().copied().fold(1.0, f64::max);
-    let bound = 1e3 * trainer.models.len() as f64 * max_c * cfg.loss.value(0.0);
-    let reg = trainer.regularizer();
-    if !(reg.is_finite() && reg <= bound) || w.iter().chain(&b).any(|x| !x.is_finite()) {
+    let max_c = it.class_weights.iter().copied().fold(1.0, f64::max);
+    let bound = 1e3 * b.len() as f64 * max_c * it.loss.value(0.0);
+    if !(reg.is_finite() && reg <= bound) || w.iter().chain(b).any(|x| !x.is_finite()) {
         return Err(Error::Invalid(format!(
             "training diverged in epoch {}: the weights grew without bound; lower --eta0 or raise --lambda",
             epoch + 1
         )));
     }
-    let dim = trainer.models[0].dim();
     let eval = (!valid.shards.is_empty()).then(|| {
         evaluate(
             valid.shards,
             Weights {
-                weights: &w,
-                biases: &b,
-                dim,
+                weights: w,
+                biases: b,
+                dim: w.len() / b.len(),
                 idf: valid.idf,
             },
             valid.positive,
             valid.classes,
-            cfg.loss,
+            it.loss,
         )
     });
     let macro_f1 = eval.as_ref().filter(|_| valid.positive.is_none()).map(|e| {
@@ -1089,14 +1118,16 @@ pub(crate) fn end_epoch(
 }
 
 /// The model file of a trainer's averaged iterates.
+#[allow(clippy::too_many_arguments)]
 pub(crate) fn build_model(
     m: &Manifest,
     positive: Option<u32>,
     training: TrainSettings,
     epochs: Vec<EpochLog>,
-    trainer: &Trainer,
+    (weights, biases): (Vec<f32>, Vec<f32>),
+    steps: u64,
+    idf: Option<Vec<f32>>,
 ) -> Model {
-    let (weights, biases) = weights_of(&trainer.models);
     let input = m
         .batches
         .last()
@@ -1119,11 +1150,11 @@ pub(crate) fn build_model(
             training,
             epochs,
             dataset_fingerprint: format!("{:016x}", m.fingerprint()),
-            steps: trainer.t,
+            steps,
         },
         weights,
         biases,
-        idf: trainer.idf().map(|x| x.to_vec()),
+        idf,
     }
 }
 

@@ -15,6 +15,7 @@ pub mod ingest;
 pub mod score;
 pub mod stats;
 pub mod train;
+pub mod tune;
 pub mod verify;
 
 use std::process::ExitCode;
@@ -44,6 +45,9 @@ enum Command {
     Score(Box<score::Args>),
     /// Measure a model on a dataset split or on labelled raw text.
     Eval(Box<eval::Args>),
+    /// Train every combination of λ values and losses in one pass over the data
+    /// and keep the best by a validation metric.
+    Tune(Box<tune::Args>),
     /// Summarise a dataset: rows, labels, nonzeros, bucket fill, shards.
     Stats(stats::Args),
     /// Recompute every checksum of a dataset or a tamis file and report damage.
@@ -60,6 +64,7 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::Eval(a) => eval::run(*a),
         Command::Stats(a) => stats::run(a),
         Command::Train(a) => train::run(*a),
+        Command::Tune(a) => tune::run(*a),
         Command::Verify(a) => verify::run(a),
         Command::Demo(a) => demo::run(a),
     }

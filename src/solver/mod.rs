@@ -33,6 +33,7 @@
 //! `B ← B + s'`; a renormalisation of `v` by `s` divides `B` by `s`. The average is
 //! `(U + B·v)/K` after `K` averaged steps, and this is the model written.
 
+pub mod lanes;
 pub mod order;
 
 use rayon::prelude::*;
