@@ -25,6 +25,8 @@
 //!     raw_counts: false,
 //!     text_fields: vec!["text".into()],
 //!     numeric_fields: vec![],
+//!     mask_digits: false,
+//!     mask_emails: false,
 //! };
 //! let mut f = Featurizer::new(&cfg).unwrap();
 //! let (mut idx, mut val) = (Vec::new(), Vec::new());

@@ -13,7 +13,7 @@ use tamis::util::{bytes, thousands};
 #[derive(Debug, clap::Args)]
 pub struct Args {
     /// A dataset folder, or a single tamis file (shard, document frequencies,
-    /// model or manifest).
+    /// token sketch, model or manifest).
     #[arg(value_name = "PATH")]
     pub path: PathBuf,
 }
@@ -66,6 +66,16 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
                 m.models(),
                 thousands(m.dim() as u64),
                 m.meta.labels.join(", ")
+            );
+        }
+        Some((Kind::TokenSketch, _)) => {
+            let (sk, _) = dataset::sketch::read(p)?;
+            outln!(
+                "ok: token sketch {} ({} tokens in {} field(s), each seen in at least {} rows)",
+                p.display(),
+                thousands(sk.len() as u64),
+                sk.fields.len(),
+                sk.min_count
             );
         }
         Some((k, _)) => bail!(

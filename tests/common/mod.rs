@@ -248,16 +248,17 @@ pub fn contents(dir: &Path) -> BTreeMap<String, Vec<u8>> {
         .collect()
 }
 
-/// The binary files of a dataset (shards and document frequencies) with their bytes.
+/// The binary files of a dataset (shards, document frequencies, token
+/// sketches) with their bytes.
 pub fn data_files(dir: &Path) -> BTreeMap<String, Vec<u8>> {
     contents(dir)
         .into_iter()
-        .filter(|(n, _)| n.ends_with(".tms") || n.ends_with(".tmd"))
+        .filter(|(n, _)| n.ends_with(".tms") || n.ends_with(".tmd") || n.ends_with(".tmk"))
         .collect()
 }
 
-/// Assert that two datasets hold byte-identical shards and document-frequency
-/// files under the same names.
+/// Assert that two datasets hold byte-identical shards, document-frequency
+/// files and token sketches under the same names.
 #[track_caller]
 pub fn assert_same_data(a: &Path, b: &Path) {
     let (fa, fb) = (data_files(a), data_files(b));
