@@ -11,6 +11,7 @@
 //!   → solver    averaged Pegasos over row views          (solver)
 //!   → training  epochs over shards, validation, logging  (train)
 //!   → model     settings + labels + weights, scoring     (model)
+//!   → explain   weights and scores read in words         (explain)
 //! ```
 //!
 //! # Example
@@ -46,6 +47,7 @@ pub mod container;
 pub mod dataset;
 pub mod error;
 pub mod eval;
+pub mod explain;
 pub mod features;
 pub mod input;
 pub mod model;

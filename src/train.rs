@@ -418,6 +418,7 @@ fn run(
         weights,
         biases,
         idf,
+        sketch: dataset::sketch::load(&opts.dir, m)?,
     };
     model.save(&opts.model)?;
     Ok(TrainReport {

@@ -542,6 +542,8 @@ pub const MODEL_WEIGHTS: u32 = 2;
 pub const MODEL_BIASES: u32 = 3;
 /// idf section id (`f32`, dimension).
 pub const MODEL_IDF: u32 = 4;
+/// Model section id of the token sketch (src/model/mod.rs).
+pub const MODEL_SKETCH: u32 = 5;
 
 /// The metadata section of a model file, parsed as plain JSON.
 pub fn model_meta(path: &Path) -> serde_json::Value {

@@ -1,0 +1,269 @@
+//! End-to-end tests of `tamis explain`: the total it prints is the score that
+//! `tamis score` prints for the same text; contributions are value × idf ×
+//! weight read independently from the model file; masking, stdin, models
+//! without a token sketch, and bad input.
+
+mod common;
+
+use std::path::{Path, PathBuf};
+
+use common::*;
+use serde_json::Value;
+
+/// Ingest `rows` invented messages into `work/NAME` (2^16 buckets) with
+/// `extra` options and train a model on it; returns the model's path.
+fn model(
+    work: &Path,
+    name: &str,
+    rows: u64,
+    ingest_extra: &[&str],
+    train_extra: &[&str],
+) -> PathBuf {
+    let input = work.join(format!("{name}.tsv"));
+    synth_tsv(&input, rows, 7);
+    let dir = work.join(name);
+    let mut a = vec!["--log2-buckets", "16", "-q"];
+    a.extend_from_slice(ingest_extra);
+    ingest(&[&input], &dir, &a).ok();
+    let m = work.join(format!("{name}.tmm"));
+    let mut t = vec!["--epochs", "3", "-q"];
+    t.extend_from_slice(train_extra);
+    train(&dir, &m, &t).ok();
+    m
+}
+
+fn explain_json(model: &Path, text: &str, extra: &[&str]) -> Value {
+    let mut args = vec!["explain", s(model), text, "--json"];
+    args.extend_from_slice(extra);
+    let o = tamis(&args);
+    o.ok();
+    serde_json::from_str(&o.stdout).unwrap_or_else(|e| panic!("{e}\n{}", o.stdout))
+}
+
+/// Score lines of text with `tamis score` (stdin): (label, score) per line.
+fn scores(model: &Path, texts: &[&str]) -> Vec<(String, String)> {
+    let input = texts.join("\n") + "\n";
+    let o = tamis_with_stdin(["score", s(model), "-q"], Some(input.as_bytes()));
+    o.ok();
+    o.stdout
+        .lines()
+        .map(|l| {
+            let f: Vec<&str> = l.split('\t').collect();
+            (f[1].to_string(), f[2].to_string())
+        })
+        .collect()
+}
+
+const TEXTS: [&str; 5] = [
+    "Claim your FREE prize now",
+    "my umbrella was left on the quillmere ferry",
+    "Is there a ramp for wheelchair boarding at Pellow pier?",
+    "The 7:40 sailing from Osk was cancelled again, is there a later crossing?",
+    "refund refund refund my season pass please",
+];
+
+/// The total equals `score`'s margin; the contributions add up to it and each is
+/// value × idf × weight with the weight read from the model file.
+fn check_against_score(model: &Path) {
+    let bytes = std::fs::read(model).unwrap();
+    let h = file_header(&bytes);
+    let dim = h.params[1] as usize;
+    let weights = f32_section(&bytes, MODEL_WEIGHTS);
+    let idf = (h.params[2] == 1).then(|| f32_section(&bytes, MODEL_IDF));
+    let meta = model_meta(model);
+    let labels: Vec<String> = meta["model_labels"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|v| v.as_str().unwrap().to_string())
+        .collect();
+    let scored = scores(model, &TEXTS);
+    for (text, (label, score)) in TEXTS.iter().zip(&scored) {
+        let e = explain_json(model, text, &[]);
+        let total = e["total"].as_f64().unwrap();
+        assert_eq!(&format!("{total:.6}"), score, "{text}");
+        assert_eq!(e["predicted"], label.as_str(), "{text}");
+        let m = labels
+            .iter()
+            .position(|l| l == e["class"].as_str().unwrap())
+            .unwrap();
+        let mut sum = e["bias"].as_f64().unwrap();
+        for c in e["contributions"].as_array().unwrap() {
+            let b = c["bucket"].as_u64().unwrap() as usize;
+            let w = weights[m * dim + b];
+            assert_eq!(c["weight"].as_f64().unwrap() as f32, w);
+            let v = c["value"].as_f64().unwrap() as f32;
+            let x = match &idf {
+                Some(d) => v * d[b],
+                None => v,
+            };
+            assert_eq!(c["contribution"].as_f64().unwrap(), (w * x) as f64);
+            sum += c["contribution"].as_f64().unwrap();
+            assert!(
+                !c["features"].as_array().unwrap().is_empty(),
+                "bucket {b} has no feature of the text"
+            );
+        }
+        assert!(
+            (sum - total).abs() <= 1e-9 * total.abs().max(1.0),
+            "{text}: {sum} vs {total}"
+        );
+        // Sorted by |contribution|.
+        let mags: Vec<f64> = e["contributions"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|c| c["contribution"].as_f64().unwrap().abs())
+            .collect();
+        assert!(mags.windows(2).all(|w| w[0] >= w[1]));
+    }
+}
+
+#[test]
+fn total_equals_the_score_for_multiclass_binary_and_idf_models() {
+    let t = tmp();
+    check_against_score(&model(t.path(), "multi", 3000, &[], &[]));
+    check_against_score(&model(
+        t.path(),
+        "binary",
+        3000,
+        &["--positive", "spam"],
+        &[],
+    ));
+    check_against_score(&model(
+        t.path(),
+        "idf",
+        3000,
+        &["--char-ngrams", "3..4", "--ngrams", "3"],
+        &["--idf", "--loss", "logistic"],
+    ));
+}
+
+#[test]
+fn features_are_named_and_the_table_ends_with_bias_and_total() {
+    let t = tmp();
+    let m = model(t.path(), "multi", 3000, &[], &[]);
+    let e = explain_json(&m, "Claim your FREE prize now", &["--class", "spam"]);
+    assert_eq!(e["class"], "spam");
+    let feats: Vec<(String, String)> = e["contributions"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .flat_map(|c| c["features"].as_array().unwrap().clone())
+        .map(|f| {
+            (
+                f["text"].as_str().unwrap().to_string(),
+                f["kind"].to_string(),
+            )
+        })
+        .collect();
+    assert!(
+        feats.contains(&("prize".into(), "\"word\"".into())),
+        "{feats:?}"
+    );
+    assert!(
+        feats.contains(&("free prize".into(), "{\"word_ngram\":2}".into())),
+        "{feats:?}"
+    );
+    // 5 words and 4 pairs (the synthetic vocabulary does not collide them in 2^16
+    // buckets: checked by the count of contributions).
+    assert_eq!(feats.len(), 9);
+    let o = tamis([
+        "explain",
+        s(&m),
+        "Claim your FREE prize now",
+        "--class",
+        "spam",
+    ]);
+    o.ok()
+        .stdout_has("\"prize\" (word)")
+        .stdout_has("bias")
+        .stdout_has("total");
+    let last = o.stdout.lines().last().unwrap();
+    let scored = scores(&m, &["Claim your FREE prize now"]);
+    let e2 = explain_json(&m, "Claim your FREE prize now", &[]);
+    if e2["class"] == "spam" {
+        assert!(last.contains(&scored[0].1), "{last} vs {:?}", scored[0]);
+    }
+    // --top keeps the total.
+    let top = explain_json(&m, "Claim your FREE prize now", &["--top", "2"]);
+    assert_eq!(top["contributions"].as_array().unwrap().len(), 2);
+    assert_eq!(top["total"], e2["total"]);
+}
+
+#[test]
+fn text_from_standard_input() {
+    let t = tmp();
+    let m = model(t.path(), "multi", 2000, &[], &[]);
+    let o = tamis_with_stdin(
+        ["explain", s(&m), "--json"],
+        Some(b"lost my blue umbrella\n"),
+    );
+    o.ok();
+    let a: Value = serde_json::from_str(&o.stdout).unwrap();
+    let b = explain_json(&m, "lost my blue umbrella", &[]);
+    assert_eq!(a["total"], b["total"]);
+}
+
+#[test]
+fn masked_models_explain_placeholders_and_score_alike() {
+    let t = tmp();
+    let m = model(
+        t.path(),
+        "masked",
+        2000,
+        &["--mask-digits", "--mask-emails", "--no-sketch"],
+        &[],
+    );
+    assert_eq!(model_meta(&m)["features"]["mask_digits"], true);
+    let text = "write to jo.berg@quillmere.example about ticket 40417";
+    let e = explain_json(&m, text, &[]);
+    let words: Vec<String> = e["contributions"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .flat_map(|c| c["features"].as_array().unwrap().clone())
+        .map(|f| f["text"].as_str().unwrap().to_string())
+        .collect();
+    assert!(words.contains(&"@email".to_string()), "{words:?}");
+    assert!(words.contains(&"ticket #".to_string()), "{words:?}");
+    assert!(
+        !words
+            .iter()
+            .any(|w| w.contains("40417") || w.contains("berg")),
+        "{words:?}"
+    );
+    // Another number and address: the same features, so the same score.
+    let other = explain_json(&m, "write to ab@cd.example about ticket 9", &[]);
+    assert_eq!(e["total"], other["total"]);
+    let scored = scores(&m, &[text]);
+    assert_eq!(format!("{:.6}", e["total"].as_f64().unwrap()), scored[0].1);
+}
+
+#[test]
+fn bad_input_is_a_clear_error() {
+    let t = tmp();
+    let m = model(t.path(), "binary", 1500, &["--positive", "spam"], &[]);
+    tamis(["explain", s(&m), "free prize", "--class", "tickets"])
+        .fails()
+        .stderr_has("one score, for its positive class \"spam\"");
+    tamis(["explain", s(&m), "... !!! ..."])
+        .fails()
+        .stderr_has("no word");
+    tamis(["explain", s(&m), "free", "--field", "body"])
+        .fails()
+        .stderr_has("no text field \"body\"");
+    tamis(["explain", s(&m), "free", "--value", "size=3"])
+        .fails()
+        .stderr_has("no numeric field");
+    let bad = t.path().join("bad.tmm");
+    std::fs::write(&bad, b"not a model").unwrap();
+    tamis(["explain", s(&bad), "free"])
+        .fails()
+        .stderr_has("bad.tmm");
+}
+
+#[test]
+fn help_explains_every_option() {
+    assert_help_explains_everything(&["explain"]);
+}
