@@ -38,8 +38,11 @@
 //! ≥ error`; and the kept counts sum to at most `N₁ + N₂`, because among the
 //! kept tokens those missing from a full summary `Sᵢ` (of `k` entries, each at
 //! least `mᵢ`) are no more than the entries of `Sᵢ` not kept, so `k·M ≤ N`.
-//! A single row per chunk makes the merge the classic Space-Saving update
-//! (the new token replaces a minimum, with count `min + 1` and error `min`).
+//! With one row per chunk the merge is a close variant of the classic
+//! Space-Saving update: a new token enters with count `floor + 1` and error
+//! `floor`, and the smallest count is dropped; the floor (the largest count
+//! ever dropped) can lag behind the smallest kept count, so a new token may be
+//! the one dropped, which only tightens the overestimate.
 //!
 //! # Privacy
 //!
@@ -772,5 +775,219 @@ mod tests {
         assert_eq!(f.floor, 4, "the dropped token had count 4");
         assert!(s.fields[1].entries.is_empty());
         assert_eq!(s.fields[1].floor, 3);
+    }
+
+    /// A stream of `rows` rows of `per_row` tokens drawn from a Zipf law
+    /// (exponent 1.1) over `vocab` words, seeded.
+    fn zipf_rows(rows: usize, per_row: usize, vocab: usize, seed: u64) -> Vec<Vec<u32>> {
+        use rand::{Rng, SeedableRng};
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(seed);
+        let weights: Vec<f64> = (1..=vocab).map(|r| (r as f64).powf(-1.1)).collect();
+        let total: f64 = weights.iter().sum();
+        let mut cdf = Vec::with_capacity(vocab);
+        let mut acc = 0.0;
+        for w in &weights {
+            acc += w / total;
+            cdf.push(acc);
+        }
+        (0..rows)
+            .map(|_| {
+                (0..per_row)
+                    .map(|_| {
+                        let u: f64 = rng.random();
+                        cdf.partition_point(|&c| c < u).min(vocab - 1) as u32
+                    })
+                    .collect()
+            })
+            .collect()
+    }
+
+    fn tok(i: u32) -> String {
+        format!("w{i}")
+    }
+
+    fn h(i: u32) -> u64 {
+        xxh3_64_with_seed(tok(i).as_bytes(), 0)
+    }
+
+    /// Exact rows per token (a token counts once per row).
+    fn exact(rows: &[Vec<u32>]) -> HashMap<u64, u64> {
+        let mut f = HashMap::new();
+        for r in rows {
+            let mut d = r.clone();
+            d.sort();
+            d.dedup();
+            for t in d {
+                *f.entry(h(t)).or_insert(0) += 1;
+            }
+        }
+        f
+    }
+
+    /// Ingest's scheme: exact counts per chunk of `chunk` rows, cut to
+    /// `capacity`, merged in order.
+    fn sketch_by_chunks(rows: &[Vec<u32>], chunk: usize, capacity: usize) -> FieldSketch {
+        let mut g = TokenSketch::new(1, capacity);
+        let mut c = ChunkCounter::new(1);
+        for part in rows.chunks(chunk) {
+            for r in part {
+                c.next_row();
+                for &t in r {
+                    c.see(0, tok(t).as_bytes(), h(t));
+                }
+            }
+            g.merge_fields(&c.finish(capacity));
+        }
+        g.fields.pop().unwrap()
+    }
+
+    /// The guarantees of Space-Saving (Metwally, Agrawal, El Abbadi 2005,
+    /// section 3, from memory: the minimum counter is at most N/m; every item
+    /// more frequent than it is monitored; a monitored count overestimates by
+    /// at most its error, and the error is at most the minimum), in the form
+    /// this module keeps them (floor for minimum), against exact counts.
+    fn assert_guarantees(s: &FieldSketch, f: &HashMap<u64, u64>, n: u64, k: usize, what: &str) {
+        assert_eq!(s.total, n, "{what}: stream length");
+        assert!(s.entries.len() <= k);
+        assert!(
+            s.floor * k as u64 <= n,
+            "{what}: floor {} > N/k = {n}/{k}",
+            s.floor
+        );
+        let listed: HashMap<u64, &SketchEntry> = s.entries.iter().map(|e| (e.hash, e)).collect();
+        for (hash, &fx) in f {
+            match listed.get(hash) {
+                Some(e) => {
+                    assert!(e.count >= fx, "{what}: count {} < f {fx}", e.count);
+                    assert!(e.count - e.error <= fx, "{what}: lower bound above f");
+                    assert!(e.error <= s.floor, "{what}: error above the floor");
+                }
+                None => {
+                    assert!(fx <= s.floor, "{what}: unlisted f {fx} > floor {}", s.floor);
+                    assert!(fx * k as u64 <= n, "{what}: f {fx} > N/k missing");
+                }
+            }
+        }
+    }
+
+    /// Textbook Space-Saving, one item at a time (an independent reference
+    /// written from the paper's description): increment a monitored item;
+    /// otherwise replace an item of minimum count (ties: the largest hash),
+    /// taking count min + 1 and error min.
+    fn textbook(rows: &[Vec<u32>], k: usize) -> HashMap<u64, (u64, u64)> {
+        let mut m: HashMap<u64, (u64, u64)> = HashMap::new();
+        for r in rows {
+            let mut d = r.clone();
+            d.sort();
+            d.dedup();
+            for t in d {
+                let key = h(t);
+                if let Some(e) = m.get_mut(&key) {
+                    e.0 += 1;
+                } else if m.len() < k {
+                    m.insert(key, (1, 0));
+                } else {
+                    let (&victim, &(min, _)) = m
+                        .iter()
+                        .min_by(|a, b| a.1 .0.cmp(&b.1 .0).then(b.0.cmp(a.0)))
+                        .unwrap();
+                    m.remove(&victim);
+                    m.insert(key, (min + 1, min));
+                }
+            }
+        }
+        m
+    }
+
+    fn top_tokens(f: &HashMap<u64, u64>, n: usize) -> Vec<u64> {
+        let mut v: Vec<(u64, u64)> = f.iter().map(|(&h, &c)| (c, h)).collect();
+        v.sort_by(|a, b| b.0.cmp(&a.0).then(a.1.cmp(&b.1)));
+        v.truncate(n);
+        let mut hs: Vec<u64> = v.into_iter().map(|x| x.1).collect();
+        hs.sort();
+        hs
+    }
+
+    #[test]
+    fn space_saving_guarantees_hold_on_a_zipf_stream() {
+        let k = 100;
+        let rows = zipf_rows(20_000, 1, 5000, 42);
+        let f = exact(&rows);
+        let n: u64 = f.values().sum();
+        assert_eq!(n, 20_000);
+        // The reference implementation meets the paper's guarantees...
+        let tb = textbook(&rows, k);
+        let min = tb.values().map(|e| e.0).min().unwrap();
+        assert!(min * k as u64 <= n);
+        for (hash, &fx) in &f {
+            match tb.get(hash) {
+                Some(&(c, e)) => assert!(c >= fx && c - e <= fx && e <= min),
+                None => assert!(fx <= min),
+            }
+        }
+        // ...and so does ingest's scheme, for every chunk size (1 row per
+        // chunk is the one-item-at-a-time case).
+        for chunk in [1, 7, 100, 5000] {
+            let s = sketch_by_chunks(&rows, chunk, k);
+            assert_guarantees(&s, &f, n, k, &format!("chunks of {chunk}"));
+            // The ten most frequent words are found, as the reference finds them.
+            let mut mine: Vec<u64> = {
+                let mut e = s.entries.clone();
+                e.sort_by(order);
+                e.iter().take(10).map(|e| e.hash).collect()
+            };
+            mine.sort();
+            assert_eq!(mine, top_tokens(&f, 10), "chunks of {chunk}");
+        }
+        let mut tb_top: Vec<(u64, u64)> = tb.iter().map(|(&h, &(c, _))| (c, h)).collect();
+        tb_top.sort_by(|a, b| b.0.cmp(&a.0).then(a.1.cmp(&b.1)));
+        let mut tb10: Vec<u64> = tb_top.iter().take(10).map(|x| x.1).collect();
+        tb10.sort();
+        assert_eq!(tb10, top_tokens(&f, 10));
+    }
+
+    #[test]
+    fn rows_with_several_tokens_count_each_once() {
+        let k = 64;
+        let rows = zipf_rows(6000, 12, 3000, 7);
+        let f = exact(&rows);
+        let n: u64 = f.values().sum();
+        for chunk in [1, 33, 1000] {
+            let s = sketch_by_chunks(&rows, chunk, k);
+            assert_guarantees(&s, &f, n, k, &format!("rows of 12, chunks of {chunk}"));
+        }
+    }
+
+    #[test]
+    fn merging_halves_keeps_the_bounds_and_an_empty_sketch_changes_nothing() {
+        let k = 80;
+        let rows = zipf_rows(10_000, 3, 4000, 9);
+        let f = exact(&rows);
+        let n: u64 = f.values().sum();
+        let (a, b) = rows.split_at(3000);
+        let mut sa = sketch_by_chunks(a, 500, k);
+        let sb = sketch_by_chunks(b, 500, k);
+        let before = sa.clone();
+        sa.merge(&FieldSketch::default(), k);
+        sa.sort();
+        let mut before = before;
+        before.sort();
+        assert_eq!(sa, before, "merging an empty summary changes nothing");
+        sa.merge(&sb, k);
+        assert_guarantees(&sa, &f, n, k, "halves");
+        // Pruning keeps the bounds for what is written.
+        let mut t = TokenSketch {
+            capacity: k as u64,
+            min_count: 0,
+            fields: vec![sa],
+        };
+        t.prune(50);
+        let s = &t.fields[0];
+        assert!(s.entries.iter().all(|e| e.guaranteed() >= 50));
+        for (hash, &fx) in &f {
+            if !s.entries.iter().any(|e| e.hash == *hash) {
+                assert!(fx <= s.floor);
+            }
+        }
     }
 }
