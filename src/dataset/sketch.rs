@@ -520,13 +520,19 @@ pub struct ChunkCounter {
     row: u32,
 }
 
+/// A counted token: rows, the last row it was counted in, and where its text
+/// lies in the arena (one map value, so a repeated token costs one probe).
+#[derive(Clone, Copy)]
+struct Slot {
+    count: u32,
+    last_row: u32,
+    start: u32,
+    len: u32,
+}
+
 #[derive(Default)]
 struct FieldCounter {
-    index: HashMap<u64, u32, IdBuild>,
-    hashes: Vec<u64>,
-    counts: Vec<u32>,
-    last_row: Vec<u32>,
-    ends: Vec<u32>,
+    index: HashMap<u64, Slot, IdBuild>,
     text: Vec<u8>,
     total: u64,
 }
@@ -552,21 +558,22 @@ impl ChunkCounter {
         let row = self.row;
         let f = &mut self.fields[field];
         match f.index.entry(hash) {
-            std::collections::hash_map::Entry::Occupied(o) => {
-                let i = *o.get() as usize;
-                if f.last_row[i] != row {
-                    f.last_row[i] = row;
-                    f.counts[i] += 1;
+            std::collections::hash_map::Entry::Occupied(mut o) => {
+                let s = o.get_mut();
+                if s.last_row != row {
+                    s.last_row = row;
+                    s.count += 1;
                     f.total += 1;
                 }
             }
             std::collections::hash_map::Entry::Vacant(v) => {
-                v.insert(f.hashes.len() as u32);
-                f.hashes.push(hash);
-                f.counts.push(1);
-                f.last_row.push(row);
+                v.insert(Slot {
+                    count: 1,
+                    last_row: row,
+                    start: f.text.len() as u32,
+                    len: token.len() as u32,
+                });
                 f.text.extend_from_slice(token);
-                f.ends.push(f.text.len() as u32);
                 f.total += 1;
             }
         }
@@ -578,35 +585,28 @@ impl ChunkCounter {
         self.row = 0;
         let mut out = Vec::with_capacity(self.fields.len());
         for f in &mut self.fields {
-            let mut ids: Vec<u32> = (0..f.hashes.len() as u32).collect();
-            let key = |&i: &u32| {
-                (
-                    std::cmp::Reverse(f.counts[i as usize]),
-                    f.hashes[i as usize],
-                )
-            };
+            let mut ids: Vec<(u64, Slot)> = f.index.drain().collect();
+            let key = |e: &(u64, Slot)| (std::cmp::Reverse(e.1.count), e.0);
             let mut floor = 0;
             if ids.len() > capacity {
                 ids.select_nth_unstable_by_key(capacity, key);
                 floor = ids[capacity..]
                     .iter()
-                    .map(|&i| f.counts[i as usize] as u64)
+                    .map(|e| e.1.count as u64)
                     .max()
                     .unwrap_or(0);
                 ids.truncate(capacity);
             }
             let entries = ids
                 .iter()
-                .map(|&i| {
-                    let i = i as usize;
-                    let start = if i == 0 { 0 } else { f.ends[i - 1] as usize };
-                    SketchEntry {
-                        hash: f.hashes[i],
-                        count: f.counts[i] as u64,
-                        error: 0,
-                        token: String::from_utf8_lossy(&f.text[start..f.ends[i] as usize])
-                            .into_owned(),
-                    }
+                .map(|&(hash, s)| SketchEntry {
+                    hash,
+                    count: s.count as u64,
+                    error: 0,
+                    token: String::from_utf8_lossy(
+                        &f.text[s.start as usize..(s.start + s.len) as usize],
+                    )
+                    .into_owned(),
                 })
                 .collect();
             out.push(FieldSketch {
@@ -614,11 +614,6 @@ impl ChunkCounter {
                 floor,
                 entries,
             });
-            f.index.clear();
-            f.hashes.clear();
-            f.counts.clear();
-            f.last_row.clear();
-            f.ends.clear();
             f.text.clear();
             f.total = 0;
         }
