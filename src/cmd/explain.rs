@@ -159,6 +159,11 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
     let fields = cfg.text_fields.len();
     for c in &e.contributions[..shown] {
         let feats = features_of(c, fields);
+        // Print a zero contribution without a minus sign.
+        let c = &Contribution {
+            contribution: c.contribution + 0.0,
+            ..c.clone()
+        };
         match c.idf {
             Some(f) => outln!(
                 "{:>+13.6}  {:>9.5}  {:>7.3}  {:>+9.4}  {:>9}  {feats}",

@@ -48,6 +48,8 @@ fn row(f: &WeightedFeature, fields: usize) -> String {
         "  {:>+10.4}  {:<28} {:>9}  {:>9}  {shares}",
         f.weight, what, rows, f.bucket
     )
+    .trim_end()
+    .to_string()
 }
 
 /// Run `tamis inspect`.
