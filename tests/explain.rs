@@ -241,6 +241,65 @@ fn masked_models_explain_placeholders_and_score_alike() {
 }
 
 #[test]
+fn several_fields_and_numbers_follow_the_record_score_reads() {
+    // The JSON Lines fixture: subject and body text fields, a numeric field.
+    let t = tmp();
+    let dir = t.path().join("json");
+    ingest(
+        &[&fixture("inbox.jsonl")],
+        &dir,
+        &[
+            "--format",
+            "jsonl",
+            "--label-field",
+            "tag",
+            "--text-field",
+            "subject",
+            "--text-field",
+            "body",
+            "--numeric-field",
+            "attachments",
+            "--log2-buckets",
+            "14",
+            "-q",
+        ],
+    )
+    .ok();
+    let m = t.path().join("json.tmm");
+    train(&dir, &m, &["--epochs", "3", "-q"]).ok();
+    let e = explain_json(
+        &m,
+        "Left my phone at Tarn pier",
+        &["--field", "body", "--value", "attachments=2"],
+    );
+    let feats: Vec<Value> = e["contributions"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .flat_map(|c| c["features"].as_array().unwrap().clone())
+        .collect();
+    assert!(feats
+        .iter()
+        .any(|f| f["kind"] == "numeric" && f["text"] == "attachments = 2"));
+    assert!(feats
+        .iter()
+        .filter(|f| f["kind"] != "numeric")
+        .all(|f| f["field"] == "body"));
+    let record = r#"{"subject": "", "body": "Left my phone at Tarn pier", "attachments": 2}"#;
+    let o = tamis_with_stdin(
+        ["score", s(&m), "-q"],
+        Some(format!("{record}\n").as_bytes()),
+    );
+    o.ok();
+    let score = o.stdout.trim().split('\t').nth(2).unwrap().to_string();
+    assert_eq!(format!("{:.6}", e["total"].as_f64().unwrap()), score);
+    // The table names the field of each word.
+    tamis(["explain", s(&m), "Left my phone", "--field", "subject"])
+        .ok()
+        .stdout_has("subject:\"phone\" (word)");
+}
+
+#[test]
 fn bad_input_is_a_clear_error() {
     let t = tmp();
     let m = model(t.path(), "binary", 1500, &["--positive", "spam"], &[]);

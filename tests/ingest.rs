@@ -740,9 +740,23 @@ fn no_sketch_and_min_count_control_what_is_kept() {
     let (sk, _) = tamis::dataset::sketch::read(&b.join(&m.sketches[0].file)).unwrap();
     assert!(!sk.is_empty());
     assert!(sk.fields[0].entries.iter().all(|e| e.count - e.error >= 5));
-    // Appending adds a sketch of its own batch.
+    // Appending adds a sketch of its own batch; readers merge them: the same
+    // data twice gives every word twice the rows (exact at this size).
     ingest(&[&fixture("inbox.tsv")], &b, &["--append"]).ok();
-    assert_eq!(manifest(&b).sketches.len(), 2);
+    let m2 = manifest(&b);
+    assert_eq!(m2.sketches.len(), 2);
+    let merged = tamis::dataset::sketch::load(&b, &m2).unwrap().unwrap();
+    let once: std::collections::HashMap<&str, u64> = sk.fields[0]
+        .entries
+        .iter()
+        .map(|e| (e.token.as_str(), e.count))
+        .collect();
+    assert!(!merged.fields[0].entries.is_empty());
+    for e in &merged.fields[0].entries {
+        if let Some(c) = once.get(e.token.as_str()) {
+            assert_eq!(e.count, 2 * c, "{}", e.token);
+        }
+    }
     // A contradicting mask on append is refused.
     ingest(&[&fixture("inbox.tsv")], &b, &["--append", "--mask-digits"])
         .fails()
