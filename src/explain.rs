@@ -207,6 +207,17 @@ pub struct Explanation {
     pub total: f64,
 }
 
+/// The first index of the largest score (the class `score` predicts).
+fn argmax(scores: &[f64]) -> usize {
+    let mut best = 0;
+    for (i, &s) in scores.iter().enumerate() {
+        if s > scores[best] {
+            best = i;
+        }
+    }
+    best
+}
+
 /// The model index explaining `class` (`None`: the predicted class; a binary
 /// model has one score, for its positive label).
 fn class_index(model: &Model, class: Option<&str>, scores: &[f64]) -> Result<usize> {
@@ -232,15 +243,7 @@ fn class_index(model: &Model, class: Option<&str>, scores: &[f64]) -> Result<usi
                     model.meta.model_labels.join(", ")
                 ))
             }),
-        None => {
-            let mut best = 0;
-            for (i, &s) in scores.iter().enumerate() {
-                if s > scores[best] {
-                    best = i;
-                }
-            }
-            Ok(best)
-        }
+        None => Ok(argmax(scores)),
     }
 }
 
@@ -282,13 +285,7 @@ pub fn explain(
     let predicted = if model.is_binary() {
         names[(scores[0] > 0.0) as usize].clone()
     } else {
-        let mut best = 0;
-        for (i, &s) in scores.iter().enumerate() {
-            if s > scores[best] {
-                best = i;
-            }
-        }
-        names[best].clone()
+        names[argmax(&scores)].clone()
     };
     let w = model.weights_of(m);
     let mask = model.dim() - 1;

@@ -19,17 +19,9 @@ fn model(
     ingest_extra: &[&str],
     train_extra: &[&str],
 ) -> PathBuf {
-    let input = work.join(format!("{name}.tsv"));
-    synth_tsv(&input, rows, 7);
-    let dir = work.join(name);
-    let mut a = vec!["--log2-buckets", "16", "-q"];
+    let mut a = vec!["--log2-buckets", "16"];
     a.extend_from_slice(ingest_extra);
-    ingest(&[&input], &dir, &a).ok();
-    let m = work.join(format!("{name}.tmm"));
-    let mut t = vec!["--epochs", "3", "-q"];
-    t.extend_from_slice(train_extra);
-    train(&dir, &m, &t).ok();
-    m
+    synth_model(work, name, rows, 7, &a, train_extra).1
 }
 
 fn explain_json(model: &Path, text: &str, extra: &[&str]) -> Value {

@@ -17,17 +17,7 @@ fn model(
     ingest_extra: &[&str],
     train_extra: &[&str],
 ) -> (PathBuf, PathBuf) {
-    let input = work.join(format!("{name}.tsv"));
-    synth_tsv(&input, 4000, 3);
-    let dir = work.join(name);
-    let mut a = vec!["-q"];
-    a.extend_from_slice(ingest_extra);
-    ingest(&[&input], &dir, &a).ok();
-    let m = work.join(format!("{name}.tmm"));
-    let mut t = vec!["--epochs", "3", "-q"];
-    t.extend_from_slice(train_extra);
-    train(&dir, &m, &t).ok();
-    (dir, m)
+    synth_model(work, name, 4000, 3, ingest_extra, train_extra)
 }
 
 fn inspect_json(model: &Path, extra: &[&str]) -> Value {

@@ -302,11 +302,7 @@ impl TokenSketch {
         let mut heads = Vec::with_capacity(fields);
         let mut n_entries = 0u64;
         for _ in 0..fields {
-            let (total, floor, n) = (
-                r.u64().ok_or_else(|| short("field table"))?,
-                r.u64().ok_or_else(|| short("field table"))?,
-                r.u64().ok_or_else(|| short("field table"))?,
-            );
+            let (total, floor, n) = r.three().ok_or_else(|| short("field table"))?;
             if n > capacity {
                 return Err(bad(format!("{n} entries exceed the capacity {capacity}")));
             }
@@ -319,11 +315,7 @@ impl TokenSketch {
         let mut raw = Vec::with_capacity(n_entries as usize);
         let mut token_bytes = 0usize;
         for _ in 0..n_entries {
-            let (hash, count, error) = (
-                r.u64().ok_or_else(|| short("entries"))?,
-                r.u64().ok_or_else(|| short("entries"))?,
-                r.u64().ok_or_else(|| short("entries"))?,
-            );
+            let (hash, count, error) = r.three().ok_or_else(|| short("entries"))?;
             let len = r.u32().ok_or_else(|| short("entries"))? as usize;
             let zero = r.u32().ok_or_else(|| short("entries"))?;
             if zero != 0 || len == 0 || len > MAX_STORED_TOKEN || error > count {
@@ -420,6 +412,9 @@ impl Reader<'_> {
         let b = self.bytes.get(self.at..self.at + 8)?;
         self.at += 8;
         Some(u64::from_le_bytes(b.try_into().ok()?))
+    }
+    fn three(&mut self) -> Option<(u64, u64, u64)> {
+        Some((self.u64()?, self.u64()?, self.u64()?))
     }
 }
 

@@ -485,6 +485,30 @@ pub fn train(dir: &Path, model: &Path, extra: &[&str]) -> Out {
     tamis(args)
 }
 
+/// `rows` invented messages (generator seed `seed`) written to `work/NAME.tsv`,
+/// ingested into `work/NAME` with `ingest_extra` and trained for 3 epochs with
+/// `train_extra` into `work/NAME.tmm`; returns (dataset, model).
+pub fn synth_model(
+    work: &Path,
+    name: &str,
+    rows: u64,
+    seed: u64,
+    ingest_extra: &[&str],
+    train_extra: &[&str],
+) -> (PathBuf, PathBuf) {
+    let input = work.join(format!("{name}.tsv"));
+    synth_tsv(&input, rows, seed);
+    let dir = work.join(name);
+    let mut a = vec!["-q"];
+    a.extend_from_slice(ingest_extra);
+    ingest(&[&input], &dir, &a).ok();
+    let m = work.join(format!("{name}.tmm"));
+    let mut t = vec!["--epochs", "3", "-q"];
+    t.extend_from_slice(train_extra);
+    train(&dir, &m, &t).ok();
+    (dir, m)
+}
+
 /// `tamis eval MODEL DATA... EXTRA... --json`, parsed (the run must succeed).
 pub fn eval_json(model: &Path, data: &[&str], extra: &[&str]) -> serde_json::Value {
     let mut args: Vec<String> = vec!["eval".into(), s(model).into()];
