@@ -318,3 +318,114 @@ fn bad_input_is_a_clear_error() {
 fn help_explains_every_option() {
     assert_help_explains_everything(&["explain"]);
 }
+
+// ------------------------------------------------------------------ properties
+
+use proptest::prelude::*;
+use tamis::features::{FeatureConfig, Featurizer, HASH_SCHEME};
+
+/// Text built from pieces that exercise the tokenizer and the masks.
+fn text() -> impl Strategy<Value = String> {
+    let piece = prop_oneof![
+        "[a-zA-Z]{1,8}",
+        "[0-9]{1,6}",
+        "[a-z]{1,3}[0-9]{1,3}[a-z]{0,2}",
+        "[a-z.]{1,6}@[a-z]{1,5}\\.[a-z]{2,3}",
+        Just("Ölmund".to_string()),
+        Just("ÉTÉ".to_string()),
+        Just("٣٤".to_string()),
+        Just("日本".to_string()),
+        "[ ,.;:!?()\\-]{1,3}",
+    ];
+    proptest::collection::vec(piece, 0..14).prop_map(|v| v.join(" "))
+}
+
+proptest! {
+    // A fixed seed (as in tests/formats.rs): a failure shows on every run, and
+    // no regression files are written.
+    #![proptest_config(ProptestConfig {
+        cases: 200,
+        failure_persistence: None,
+        rng_seed: proptest::test_runner::RngSeed::Fixed(0x5E7C_0005),
+        ..ProptestConfig::default()
+    })]
+
+    /// The replayed features of `explain` add up, bucket by bucket, to exactly
+    /// the raw counts the featurizer (hence `score`) puts in the row.
+    #[test]
+    fn replayed_features_sum_to_the_featurizer_row(
+        a in text(),
+        b in text(),
+        ngrams in 1u32..4,
+        chars in any::<bool>(),
+        digits in any::<bool>(),
+        emails in any::<bool>(),
+    ) {
+        let cfg = FeatureConfig {
+            scheme: HASH_SCHEME.into(),
+            hash_seed: 11,
+            log2_buckets: 10,
+            ngrams,
+            char_ngrams: chars.then(|| "2..3".parse().unwrap()),
+            raw_counts: true,
+            text_fields: vec!["subject".into(), "body".into()],
+            numeric_fields: vec![],
+            mask_digits: digits,
+            mask_emails: emails,
+        };
+        let uses = tamis::explain::feature_origins(&cfg, &[a.as_bytes(), b.as_bytes()], &[]);
+        let mut net = std::collections::BTreeMap::<u32, i64>::new();
+        for u in &uses {
+            *net.entry(u.bucket).or_default() += u.sign as i64 * u.occurrences as i64;
+        }
+        net.retain(|_, v| *v != 0);
+        let mut f = Featurizer::new(&cfg).unwrap();
+        f.begin_row();
+        f.add_text(0, a.as_bytes());
+        f.add_text(1, b.as_bytes());
+        let (mut idx, mut val) = (Vec::new(), Vec::new());
+        f.finish_row(&mut idx, &mut val);
+        let row: std::collections::BTreeMap<u32, i64> =
+            idx.iter().zip(&val).map(|(&i, &v)| (i, v as i64)).collect();
+        prop_assert_eq!(net, row);
+        if digits {
+            prop_assert!(!uses.iter().any(|u| u.kind == tamis::explain::FeatureKind::Word
+                && u.text.chars().any(|c| c.is_ascii_digit())));
+        }
+    }
+
+    /// The sketch parser never panics on damaged bytes, and what it accepts
+    /// serialises back to the same bytes.
+    #[test]
+    fn sketch_bytes_never_panic(
+        flips in proptest::collection::vec((any::<prop::sample::Index>(), any::<u8>()), 0..4),
+        cut in any::<prop::sample::Index>(),
+        raw in proptest::collection::vec(any::<u8>(), 0..200),
+    ) {
+        use tamis::dataset::sketch::{FieldSketch, SketchEntry, TokenSketch};
+        let good = TokenSketch {
+            capacity: 8,
+            min_count: 2,
+            fields: vec![FieldSketch {
+                total: 40,
+                floor: 1,
+                entries: vec![
+                    SketchEntry { hash: 5, count: 9, error: 0, token: "ferry".into() },
+                    SketchEntry { hash: 7, count: 3, error: 1, token: "#".into() },
+                ],
+            }],
+        }
+        .to_bytes();
+        let p = Path::new("fuzz.tmk");
+        let mut bad = good.clone();
+        for (i, v) in &flips {
+            let at = i.index(bad.len());
+            bad[at] = *v;
+        }
+        for bytes in [&bad[..], &bad[..cut.index(bad.len() + 1)], &raw[..]] {
+            if let Ok(s) = TokenSketch::from_bytes(bytes, p) {
+                prop_assert_eq!(s.to_bytes(), bytes.to_vec());
+            }
+        }
+    }
+}
