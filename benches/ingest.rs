@@ -20,6 +20,8 @@ fn config() -> FeatureConfig {
         raw_counts: false,
         text_fields: vec!["text".into()],
         numeric_fields: vec![],
+        mask_digits: false,
+        mask_emails: false,
     }
 }
 

@@ -22,6 +22,8 @@ fn rows(n: u64) -> MemRows {
         raw_counts: false,
         text_fields: vec!["text".into()],
         numeric_fields: vec![],
+        mask_digits: false,
+        mask_emails: false,
     };
     let mut f = Featurizer::new(&cfg).unwrap();
     let mut text = Vec::new();

@@ -6,7 +6,8 @@
 //! ```text
 //! offset  size  field
 //!      0     8  magic  89 54 41 4D 49 53 0D 0A  ("\x89TAMIS\r\n")
-//!      8     4  kind   (1 shard, 2 document frequencies, 3 model, 4 checkpoint)
+//!      8     4  kind   (1 shard, 2 document frequencies, 3 model, 4 checkpoint,
+//!                      5 token sketch)
 //!     12     4  format version of that kind
 //!     16     4  section count S
 //!     20     4  reserved, zero
@@ -54,6 +55,8 @@ pub enum Kind {
     Model = 3,
     /// A training checkpoint.
     Checkpoint = 4,
+    /// The token sketch of one ingest batch.
+    TokenSketch = 5,
 }
 
 impl Kind {
@@ -64,6 +67,7 @@ impl Kind {
             Kind::DocFreq => "document-frequency",
             Kind::Model => "model",
             Kind::Checkpoint => "checkpoint",
+            Kind::TokenSketch => "token-sketch",
         }
     }
 
@@ -74,6 +78,7 @@ impl Kind {
             2 => Some(Kind::DocFreq),
             3 => Some(Kind::Model),
             4 => Some(Kind::Checkpoint),
+            5 => Some(Kind::TokenSketch),
             _ => None,
         }
     }
@@ -313,6 +318,13 @@ impl<B: AsRef<[u8]>> Container<B> {
     /// All bytes of the file.
     pub fn bytes(&self) -> &[u8] {
         self.bytes.as_ref()
+    }
+
+    /// The stored checksum of the header (it covers the section table, hence
+    /// every section's checksum: a fingerprint of the whole file).
+    pub fn header_checksum(&self) -> u64 {
+        let at = FIXED + ENTRY * self.header.sections.len();
+        u64_at(self.bytes.as_ref(), at)
     }
 
     /// The bytes of section `id`, or an error naming the missing section.

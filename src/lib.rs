@@ -12,6 +12,7 @@
 //!   → training  epochs over shards, validation, logging  (train)
 //!   → checkpoint whole solver state, resume exactly       (checkpoint)
 //!   → model     settings + labels + weights, scoring     (model)
+//!   → explain   weights and scores read in words         (explain)
 //! ```
 //!
 //! # Example
@@ -26,6 +27,8 @@
 //!     raw_counts: false,
 //!     text_fields: vec!["text".into()],
 //!     numeric_fields: vec![],
+//!     mask_digits: false,
+//!     mask_emails: false,
 //! };
 //! let mut f = Featurizer::new(&cfg).unwrap();
 //! let (mut idx, mut val) = (Vec::new(), Vec::new());
@@ -46,6 +49,7 @@ pub mod container;
 pub mod dataset;
 pub mod error;
 pub mod eval;
+pub mod explain;
 pub mod features;
 pub mod input;
 pub mod model;

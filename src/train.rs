@@ -24,6 +24,7 @@ use crate::checkpoint::{
     Checkpoint, CheckpointMeta, EarlyStop, EpochSums, Position, ShardRef, WriteCost,
 };
 use crate::container;
+use crate::dataset::sketch::TokenSketch;
 use crate::dataset::{self, docfreq::DocFreq, Log, Manifest, ShardEntry, Split};
 use crate::error::{Error, Result};
 use crate::eval::{evaluate, per_class, Evaluation, Weights};
@@ -606,6 +607,8 @@ impl Run<'_> {
             None if self.settings.idf => Some(idf_of(&opts.dir, m)?),
             None => None,
         };
+        // The token sketch goes into the model; read (and checked) before training.
+        let sketch = dataset::sketch::load(&opts.dir, m)?;
         let train_entries: Vec<&ShardEntry> = m.shards_of(Split::Train).collect();
         let train = open_shards(&opts.dir, m, &train_entries, n_labels)?;
         let valid_entries: Vec<&ShardEntry> = m.shards_of(Split::Validation).collect();
@@ -825,6 +828,7 @@ impl Run<'_> {
             weights_of(&trainer.models),
             trainer.t,
             idf,
+            sketch,
         );
         model.save(&opts.model).map_err(|e| match e {
             Error::Io { path, cause } => Error::Invalid(format!(
@@ -1127,6 +1131,7 @@ pub(crate) fn build_model(
     (weights, biases): (Vec<f32>, Vec<f32>),
     steps: u64,
     idf: Option<Vec<f32>>,
+    sketch: Option<TokenSketch>,
 ) -> Model {
     let input = m
         .batches
@@ -1155,6 +1160,7 @@ pub(crate) fn build_model(
         weights,
         biases,
         idf,
+        sketch,
     }
 }
 

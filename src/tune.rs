@@ -216,6 +216,7 @@ fn run(
     } else {
         None
     };
+    let sketch = crate::dataset::sketch::load(&opts.dir, m)?;
     let train_entries: Vec<&ShardEntry> = m.shards_of(Split::Train).collect();
     let valid_entries: Vec<&ShardEntry> = m.shards_of(Split::Validation).collect();
     let shards = train::open_shards(&opts.dir, m, &train_entries, n_labels)?;
@@ -370,6 +371,7 @@ fn run(
             std::mem::take(&mut all[c]),
             lanes.t,
             idf.clone(),
+            sketch.clone(),
         )
     };
     // The best model is written first; with `keep`, every other one follows.

@@ -89,7 +89,7 @@ fn the_same_seed_gives_the_same_dataset() {
     let m = manifest(&dir.join("dataset"));
     assert_eq!(
         data_files(&dir.join("dataset")).len(),
-        m.shards.len() + m.doc_freq.len(),
+        m.shards.len() + m.doc_freq.len() + m.sketches.len(),
         "files of the first demo left over"
     );
     assert_eq!(m.batches.len(), 1);

@@ -727,8 +727,12 @@ fn manifest_follows_its_documented_checksum_rule() {
     // What ingest wrote verifies, and the listed files are the ones on disk.
     let report = dataset::verify(&ds).unwrap();
     assert!(report.problems.is_empty(), "{:?}", report.problems);
-    assert_eq!(report.checked, 1 + m.shards.len() + m.doc_freq.len());
+    assert_eq!(
+        report.checked,
+        1 + m.shards.len() + m.doc_freq.len() + m.sketches.len()
+    );
     assert_eq!(m.doc_freq.len(), 1);
+    assert_eq!(m.sketches.len(), 1, "one token sketch per batch by default");
 }
 
 #[test]

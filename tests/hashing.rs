@@ -279,6 +279,8 @@ fn config(hash_seed: u64, log2: u32, ngrams: u32) -> FeatureConfig {
         raw_counts: false,
         text_fields: vec!["text".into()],
         numeric_fields: vec![],
+        mask_digits: false,
+        mask_emails: false,
     }
 }
 

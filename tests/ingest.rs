@@ -687,6 +687,82 @@ fn thread_count_does_not_change_the_dataset() {
     tamis(["verify", s(&dirs[1])]).ok();
 }
 
+#[test]
+fn thread_count_does_not_change_a_truncated_token_sketch() {
+    // A sketch far smaller than the vocabulary, so that chunk summaries drop
+    // tokens and merges carry floors: the file must still not depend on the
+    // thread count (chunks are summarised in workers, merged in input order).
+    let t = tmp();
+    let input = t.path().join("big.tsv");
+    synth_tsv(&input, 40_000, 5);
+    let mut files = Vec::new();
+    for threads in ["1", "2"] {
+        let out = t.path().join(format!("j{threads}"));
+        ingest(
+            &[&input],
+            &out,
+            &[
+                "--threads",
+                threads,
+                "--sketch-size",
+                "40",
+                "--sketch-min-count",
+                "1",
+                "--quiet",
+            ],
+        )
+        .ok();
+        let m = manifest(&out);
+        assert_eq!(m.sketches.len(), 1);
+        files.push(std::fs::read(out.join(&m.sketches[0].file)).unwrap());
+        let (sk, _) = tamis::dataset::sketch::read(&out.join(&m.sketches[0].file)).unwrap();
+        assert_eq!(sk.fields[0].entries.len(), 40);
+        assert!(sk.fields[0].floor > 0, "the summary was truncated");
+    }
+    assert!(
+        files[0] == files[1],
+        "sketch files differ between 1 and 2 threads"
+    );
+}
+
+#[test]
+fn no_sketch_and_min_count_control_what_is_kept() {
+    let t = tmp();
+    let (a, b) = (t.path().join("a"), t.path().join("b"));
+    ingest(&[&fixture("inbox.tsv")], &a, &["--no-sketch"]).ok();
+    let m = manifest(&a);
+    assert!(m.sketches.is_empty());
+    assert!(!names_in(&a).iter().any(|n| n.starts_with("sketch-")));
+    // Old manifests have no `sketches` key; one without sketches writes none.
+    assert!(manifest_json(&a).get("sketches").is_none());
+    ingest(&[&fixture("inbox.tsv")], &b, &["--sketch-min-count", "5"]).ok();
+    let m = manifest(&b);
+    let (sk, _) = tamis::dataset::sketch::read(&b.join(&m.sketches[0].file)).unwrap();
+    assert!(!sk.is_empty());
+    assert!(sk.fields[0].entries.iter().all(|e| e.count - e.error >= 5));
+    // Appending adds a sketch of its own batch; readers merge them: the same
+    // data twice gives every word twice the rows (exact at this size).
+    ingest(&[&fixture("inbox.tsv")], &b, &["--append"]).ok();
+    let m2 = manifest(&b);
+    assert_eq!(m2.sketches.len(), 2);
+    let merged = tamis::dataset::sketch::load(&b, &m2).unwrap().unwrap();
+    let once: std::collections::HashMap<&str, u64> = sk.fields[0]
+        .entries
+        .iter()
+        .map(|e| (e.token.as_str(), e.count))
+        .collect();
+    assert!(!merged.fields[0].entries.is_empty());
+    for e in &merged.fields[0].entries {
+        if let Some(c) = once.get(e.token.as_str()) {
+            assert_eq!(e.count, 2 * c, "{}", e.token);
+        }
+    }
+    // A contradicting mask on append is refused.
+    ingest(&[&fixture("inbox.tsv")], &b, &["--append", "--mask-digits"])
+        .fails()
+        .stderr_has("--mask-digits");
+}
+
 // ------------------------------------------------------------------ bad input
 
 #[test]
@@ -1177,6 +1253,7 @@ fn an_existing_dataset_is_replaced_only_with_force() {
         .iter()
         .map(|e| e.file.clone())
         .chain(m.doc_freq.iter().map(|d| d.file.clone()))
+        .chain(m.sketches.iter().map(|d| d.file.clone()))
         .collect();
     let present: std::collections::BTreeSet<String> = data_files(&out).into_keys().collect();
     assert_eq!(present, listed, "old shards left behind");
@@ -1206,6 +1283,7 @@ fn leftovers_of_an_interrupted_ingest_are_removed() {
         .iter()
         .map(|e| e.file.clone())
         .chain(m.doc_freq.iter().map(|d| d.file.clone()))
+        .chain(m.sketches.iter().map(|d| d.file.clone()))
         .chain(["manifest.json".to_string()])
         .collect();
     assert_eq!(names, listed);

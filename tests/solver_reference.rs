@@ -413,6 +413,8 @@ fn text_problem(n_train: usize, n_valid: usize, log2_buckets: u32) -> (MemRows, 
         raw_counts: false,
         text_fields: vec!["text".into()],
         numeric_fields: vec![],
+        mask_digits: false,
+        mask_emails: false,
     };
     let mut f = Featurizer::new(&cfg).unwrap();
     let mut synth = Synth::new(SynthConfig {

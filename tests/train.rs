@@ -154,12 +154,15 @@ fn a_model_file_is_written() {
         let h = file_header(&bytes);
         // src/container.rs: kind 3 is a model; src/model/mod.rs: version 1,
         // parameters (models, dimension, idf stored, 0), sections meta, weights,
-        // biases.
+        // biases, and the token sketch of the data (on by default at ingest).
         assert_eq!(h.kind, 3);
         assert_eq!(h.version, 1);
         assert_eq!(h.file_len, bytes.len() as u64);
         assert_eq!(h.params, [models, 1 << 16, 0, 0]);
-        assert_eq!(h.ids, [MODEL_META, MODEL_WEIGHTS, MODEL_BIASES]);
+        assert_eq!(
+            h.ids,
+            [MODEL_META, MODEL_WEIGHTS, MODEL_BIASES, MODEL_SKETCH]
+        );
         let w = f32_section(&bytes, MODEL_WEIGHTS);
         let b = f32_section(&bytes, MODEL_BIASES);
         assert_eq!(w.len() as u64, models << 16);
@@ -206,7 +209,16 @@ fn idf_factors_follow_the_smoothed_formula() {
     let bytes = std::fs::read(&model).unwrap();
     let h = file_header(&bytes);
     assert_eq!(h.params, [6, 1 << 16, 1, 0]);
-    assert_eq!(h.ids, [MODEL_META, MODEL_WEIGHTS, MODEL_BIASES, MODEL_IDF]);
+    assert_eq!(
+        h.ids,
+        [
+            MODEL_META,
+            MODEL_WEIGHTS,
+            MODEL_BIASES,
+            MODEL_IDF,
+            MODEL_SKETCH
+        ]
+    );
     let idf = f32_section(&bytes, MODEL_IDF);
     assert_eq!(idf.len(), 1 << 16);
     // Document frequencies counted here from the training rows themselves.

@@ -30,7 +30,7 @@ fn biggest_train_shard(dir: &Path) -> PathBuf {
 
 fn file_count(dir: &Path) -> usize {
     let m = manifest(dir);
-    1 + m.shards.len() + m.doc_freq.len()
+    1 + m.shards.len() + m.doc_freq.len() + m.sketches.len()
 }
 
 #[test]
@@ -58,6 +58,33 @@ fn a_fresh_dataset_verifies() {
     tamis(["verify", s(&out.join("manifest.json"))])
         .ok()
         .stdout_has("ok: manifest");
+    tamis(["verify", s(&out.join(&m.sketches[0].file))])
+        .ok()
+        .stdout_has("ok: token sketch");
+}
+
+#[test]
+fn a_damaged_token_sketch_is_named() {
+    let t = tmp();
+    let out = t.path().join("d");
+    dataset(&out, &["--sketch-min-count", "1"]);
+    let m = manifest(&out);
+    let path = out.join(&m.sketches[0].file);
+    let good = std::fs::read(&path).unwrap();
+    let (off, len) = section(&good, 1);
+    let mut bad = good.clone();
+    bad[off + len - 1] ^= 0x20;
+    std::fs::write(&path, &bad).unwrap();
+    tamis(["verify", s(&out)])
+        .fails()
+        .stderr_has(&format!("damaged: {}", path.display()))
+        .stderr_has("checksum mismatch in sketch");
+    tamis(["verify", s(&path)]).fails().stderr_has("sketch");
+    // Truncated.
+    std::fs::write(&path, &good[..good.len() - 1]).unwrap();
+    tamis(["verify", s(&out)]).fails().stderr_has("truncated");
+    std::fs::write(&path, &good).unwrap();
+    tamis(["verify", s(&out)]).ok();
 }
 
 #[test]

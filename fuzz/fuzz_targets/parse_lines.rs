@@ -47,6 +47,8 @@ fn features(spec: &InputSpec) -> FeatureConfig {
         raw_counts: false,
         text_fields: spec.text.clone(),
         numeric_fields: spec.numeric.clone(),
+        mask_digits: false,
+        mask_emails: false,
     }
 }
 

@@ -338,6 +338,8 @@ mod tests {
             raw_counts: false,
             text_fields: vec!["text".into()],
             numeric_fields: vec![],
+            mask_digits: false,
+            mask_emails: false,
         };
         let d = 1 << 10;
         let models = (0..3)

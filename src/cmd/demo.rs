@@ -154,9 +154,13 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
         model.display()
     );
     outln!(
-        "next: `tamis score {m} FILE`, `tamis eval {m} {d}`, `tamis stats {d}`",
+        "next: `tamis score {m} FILE`, `tamis eval {m} {d}`, `tamis stats {d}`,",
         m = model.display(),
         d = data.display()
+    );
+    outln!(
+        "      `tamis inspect {m} --class spam`, `tamis explain {m} \"claim your free prize\"`",
+        m = model.display()
     );
     Ok(ExitCode::SUCCESS)
 }

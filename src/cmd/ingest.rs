@@ -68,6 +68,32 @@ pub struct Args {
     #[arg(long)]
     pub raw_counts: bool,
 
+    /// Replace every run of digits inside a word by `#` before hashing (`order12345`
+    /// becomes `order#`): phone, account and order numbers are not learnt or kept.
+    /// Stored with the dataset and the model, so scoring masks the same way.
+    #[arg(long)]
+    pub mask_digits: bool,
+
+    /// Replace every e-mail-like span (`name@host.domain`) by the token `@email`
+    /// before hashing. Stored with the dataset and the model, like --mask-digits.
+    #[arg(long)]
+    pub mask_emails: bool,
+
+    /// Keep no token sketch for this batch (the sketch lists frequent words so that
+    /// `tamis inspect` can name what a model weighs; it stores raw words).
+    #[arg(long)]
+    pub no_sketch: bool,
+
+    /// Words kept in the token sketch per text field; memory is about 100 bytes
+    /// per word kept [default: 10000].
+    #[arg(long, value_name = "N")]
+    pub sketch_size: Option<usize>,
+
+    /// Write only words certainly seen in at least this many rows to the token
+    /// sketch, so that rare words (names, addresses) are not kept [default: 20].
+    #[arg(long, value_name = "ROWS")]
+    pub sketch_min_count: Option<u64>,
+
     /// Seed of the feature hash, the validation split and the shard scatter [default: 1].
     #[arg(long, value_name = "S")]
     pub seed: Option<u64>,
@@ -158,6 +184,11 @@ pub fn options(a: &Args) -> anyhow::Result<IngestOptions> {
             positive: a.positive.clone(),
             shard_rows: a.shard_rows,
             scatter: a.scatter,
+            mask_digits: a.mask_digits.then_some(true),
+            mask_emails: a.mask_emails.then_some(true),
+            no_sketch: a.no_sketch,
+            sketch_size: a.sketch_size,
+            sketch_min_count: a.sketch_min_count,
         },
         append: a.append,
         force: a.force,

@@ -11,7 +11,9 @@ macro_rules! outln {
 
 pub mod demo;
 pub mod eval;
+pub mod explain;
 pub mod ingest;
+pub mod inspect;
 pub mod score;
 pub mod stats;
 pub mod train;
@@ -48,6 +50,11 @@ enum Command {
     /// Train every combination of λ values and losses in one pass over the data
     /// and keep the best by a validation metric.
     Tune(Box<tune::Args>),
+    /// List the words with the largest weights of a model, by class (names come
+    /// from the token sketch of the training data).
+    Inspect(inspect::Args),
+    /// Show how each word and feature of a text adds to its score.
+    Explain(explain::Args),
     /// Summarise a dataset: rows, labels, nonzeros, bucket fill, shards.
     Stats(stats::Args),
     /// Recompute every checksum of a dataset or a tamis file and report damage.
@@ -63,6 +70,8 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::Score(a) => score::run(*a),
         Command::Eval(a) => eval::run(*a),
         Command::Stats(a) => stats::run(a),
+        Command::Inspect(a) => inspect::run(a),
+        Command::Explain(a) => explain::run(a),
         Command::Train(a) => train::run(*a),
         Command::Tune(a) => tune::run(*a),
         Command::Verify(a) => verify::run(a),

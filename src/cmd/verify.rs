@@ -13,7 +13,7 @@ use tamis::util::{bytes, thousands};
 #[derive(Debug, clap::Args)]
 pub struct Args {
     /// A dataset folder, or a single tamis file (shard, document frequencies,
-    /// model, checkpoint or manifest).
+    /// model, checkpoint, token sketch or manifest).
     #[arg(value_name = "PATH")]
     pub path: PathBuf,
 }
@@ -91,6 +91,16 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
                 thousands(pos.step),
                 c.dataset.display(),
                 c.model.display()
+            );
+        }
+        Some((Kind::TokenSketch, _)) => {
+            let (sk, _) = dataset::sketch::read(p)?;
+            outln!(
+                "ok: token sketch {} ({} tokens in {} field(s), each seen in at least {} rows)",
+                p.display(),
+                thousands(sk.len() as u64),
+                sk.fields.len(),
+                sk.min_count
             );
         }
         None if p

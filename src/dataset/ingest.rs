@@ -30,9 +30,10 @@ use xxhash_rust::xxh3::xxh3_64_with_seed;
 
 use super::docfreq::{self, DocCounter};
 use super::manifest::{
-    Batch, DocFreqEntry, InputEntry, LabelEntry, Manifest, ScatterRule, ShardEntry, Split,
-    SplitRule, FORMAT_NAME, MANIFEST_FILE, VERSION,
+    Batch, DocFreqEntry, InputEntry, LabelEntry, Manifest, ScatterRule, ShardEntry,
+    SketchFileEntry, Split, SplitRule, FORMAT_NAME, MANIFEST_FILE, VERSION,
 };
+use super::sketch::{self, ChunkCounter, FieldSketch, TokenSketch};
 use crate::error::{Error, IoContext, Result};
 use crate::features::{CharNgrams, FeatureConfig, Featurizer, HASH_SCHEME};
 use crate::input::{
@@ -81,6 +82,17 @@ pub struct Choices {
     pub shard_rows: Option<u64>,
     /// Open training shard writers.
     pub scatter: Option<u32>,
+    /// Replace digit runs by a placeholder before hashing.
+    pub mask_digits: Option<bool>,
+    /// Replace e-mail-like spans by a placeholder before hashing.
+    pub mask_emails: Option<bool>,
+    /// Keep no token sketch for this batch.
+    pub no_sketch: bool,
+    /// Token-sketch entries per text field [`sketch::DEFAULT_CAPACITY`].
+    pub sketch_size: Option<usize>,
+    /// Least guaranteed rows of a token written to the sketch
+    /// [`sketch::DEFAULT_MIN_COUNT`].
+    pub sketch_min_count: Option<u64>,
 }
 
 /// Everything `ingest` needs.
@@ -197,6 +209,8 @@ fn new_manifest(opts: &IngestOptions) -> Result<Manifest> {
         raw_counts: c.raw_counts.unwrap_or(false),
         text_fields: opts.spec.text.clone(),
         numeric_fields: opts.spec.numeric.clone(),
+        mask_digits: c.mask_digits.unwrap_or(false),
+        mask_emails: c.mask_emails.unwrap_or(false),
     };
     features.validate()?;
     let validation = c.validation.unwrap_or(DEFAULT_VALIDATION);
@@ -232,6 +246,7 @@ fn new_manifest(opts: &IngestOptions) -> Result<Manifest> {
         labels: vec![],
         shards: vec![],
         doc_freq: vec![],
+        sketches: vec![],
         batches: vec![],
         next_shard: 0,
     })
@@ -256,6 +271,18 @@ fn check_append(m: &Manifest, opts: &IngestOptions, path: &Path) -> Result<()> {
         &f.char_ngrams,
     )?;
     agree(path, "--raw-counts", c.raw_counts.as_ref(), &f.raw_counts)?;
+    agree(
+        path,
+        "--mask-digits",
+        c.mask_digits.as_ref(),
+        &f.mask_digits,
+    )?;
+    agree(
+        path,
+        "--mask-emails",
+        c.mask_emails.as_ref(),
+        &f.mask_emails,
+    )?;
     agree(
         path,
         "--validation",
@@ -291,6 +318,7 @@ fn is_ours(name: &str) -> bool {
         || name.contains(".tmp-")
         || ((name.starts_with("train-") || name.starts_with("valid-")) && name.ends_with(".tms"))
         || (name.starts_with("docfreq-") && name.ends_with(".tmd"))
+        || (name.starts_with("sketch-") && name.ends_with(".tmk"))
 }
 
 /// Prepare the folder: create it, take the lock, load or refuse an existing
@@ -337,6 +365,7 @@ fn prepare(opts: &IngestOptions, log: &Log) -> Result<(Lock, Manifest, Option<Ma
                 .iter()
                 .map(|s| s.file.as_str())
                 .chain(m.doc_freq.iter().map(|d| d.file.as_str()))
+                .chain(m.sketches.iter().map(|d| d.file.as_str()))
         })
         .collect();
     let mut leftovers = Vec::new();
@@ -391,12 +420,16 @@ struct ChunkOut {
     bad: Vec<BadLine>,
     blank: u64,
     lossy: u64,
+    /// The chunk's token summaries, one per text field.
+    sketch: Option<Vec<FieldSketch>>,
 }
 
 struct Worker {
     feat: Featurizer,
     scratch: ParseScratch,
     local_labels: HashMap<String, u32>,
+    /// Token counts of the chunk, when a sketch is kept.
+    tokens: Option<ChunkCounter>,
 }
 
 /// Parse and hash one chunk; count document frequencies of its training rows
@@ -408,6 +441,7 @@ fn process(
     df: &mut DocCounter,
     split_seed: u64,
     fraction: f64,
+    sketch_size: usize,
 ) -> ChunkOut {
     let guess = chunk.data.len() / 4;
     let mut out = ChunkOut {
@@ -420,6 +454,7 @@ fn process(
     let feat = &mut w.feat;
     let local = &mut w.local_labels;
     local.clear();
+    let mut tokens = w.tokens.as_mut();
     let mut empty = Vec::new();
     let counts = parse_chunk(
         chunk,
@@ -429,8 +464,17 @@ fn process(
         |f| {
             feat.begin_row();
             let mut invalid = 0;
-            for (i, t) in f.texts.iter().enumerate() {
-                invalid += feat.add_text(i, t).invalid_utf8;
+            if let Some(tc) = tokens.as_deref_mut() {
+                tc.next_row();
+                for (i, t) in f.texts.iter().enumerate() {
+                    invalid += feat
+                        .add_text_with(i, t, |tok, h| tc.see(i, tok, h))
+                        .invalid_utf8;
+                }
+            } else {
+                for (i, t) in f.texts.iter().enumerate() {
+                    invalid += feat.add_text(i, t).invalid_utf8;
+                }
             }
             for (i, v) in f.numbers.iter().enumerate() {
                 if let Some(v) = v {
@@ -478,6 +522,7 @@ fn process(
         out.bad.sort_by_key(|b| b.line);
     }
     out.blank = counts.blank;
+    out.sketch = w.tokens.as_mut().map(|tc| tc.finish(sketch_size));
     out
 }
 
@@ -528,6 +573,10 @@ struct Sink {
     rows_done: Arc<AtomicU64>,
     /// Sync shards before the manifest refers to them.
     durable: bool,
+    /// The batch's token sketch, merged chunk by chunk in input order.
+    sketch: Option<TokenSketch>,
+    /// Least guaranteed rows of a written token.
+    sketch_min_count: u64,
     syncs: Vec<std::thread::JoinHandle<Result<()>>>,
 }
 
@@ -575,6 +624,8 @@ impl Sink {
             rows_done,
             durable: true,
             syncs: Vec::new(),
+            sketch: None,
+            sketch_min_count: sketch::DEFAULT_MIN_COUNT,
         }
     }
 
@@ -685,7 +736,10 @@ impl Sink {
         }
     }
 
-    fn push(&mut self, c: ChunkOut) -> Result<()> {
+    fn push(&mut self, mut c: ChunkOut) -> Result<()> {
+        if let (Some(g), Some(cs)) = (&mut self.sketch, c.sketch.take()) {
+            g.merge_fields(&cs);
+        }
         let writers = self.m.scatter.writers as u64;
         let scatter_seed = self.m.scatter.seed;
         // Chunk-local label numbers → class ids, once per chunk.
@@ -838,6 +892,20 @@ impl Sink {
             train_rows: self.train_rows,
             checksum: format!("{sum:016x}"),
         });
+        if let Some(mut sk) = self.sketch.take() {
+            sk.prune(self.sketch_min_count);
+            let name = format!("sketch-{:06}.tmk", self.m.next_shard);
+            self.m.next_shard += 1;
+            let path = self.dir.join(&name);
+            self.written.paths.push(path.clone());
+            let sum = sketch::write(&path, &sk, self.batch)?;
+            self.m.sketches.push(SketchFileEntry {
+                file: name,
+                batch: self.batch,
+                tokens: sk.len() as u64,
+                checksum: format!("{sum:016x}"),
+            });
+        }
         let bad_map: BTreeMap<String, u64> = BadReason::ALL
             .iter()
             .map(|r| (r.key().to_string(), self.bad[r.index()]))
@@ -872,6 +940,7 @@ impl Sink {
                 .iter()
                 .map(|s| &s.file)
                 .chain(old.doc_freq.iter().map(|d| &d.file))
+                .chain(old.sketches.iter().map(|d| &d.file))
             {
                 let _ = std::fs::remove_file(self.dir.join(f));
             }
@@ -996,6 +1065,21 @@ pub fn ingest(opts: &IngestOptions, log: Log) -> Result<IngestSummary> {
     Featurizer::new(&cfg)?;
     let mut sink = Sink::new(&opts.out, manifest, names, log.clone(), rows_done.clone());
     sink.durable = opts.sync;
+    let sketch_size = opts.choices.sketch_size.unwrap_or(sketch::DEFAULT_CAPACITY);
+    if !(1..=sketch::MAX_CAPACITY).contains(&sketch_size) {
+        return Err(Error::Invalid(format!(
+            "--sketch-size must be in 1..={}, got {sketch_size}",
+            sketch::MAX_CAPACITY
+        )));
+    }
+    let keep_sketch = !opts.choices.no_sketch;
+    if keep_sketch {
+        sink.sketch = Some(TokenSketch::new(cfg.text_fields.len(), sketch_size));
+        sink.sketch_min_count = opts
+            .choices
+            .sketch_min_count
+            .unwrap_or(sketch::DEFAULT_MIN_COUNT);
+    }
     let spec = &opts.spec;
     let batch_len = 2 * threads;
     // Document frequencies: one array per pool thread, summed at the end
@@ -1051,11 +1135,13 @@ pub fn ingest(opts: &IngestOptions, log: Log) -> Result<IngestSummary> {
                                 feat: Featurizer::new(&cfg).expect("validated above"),
                                 scratch: ParseScratch::default(),
                                 local_labels: HashMap::new(),
+                                tokens: keep_sketch
+                                    .then(|| ChunkCounter::new(cfg.text_fields.len())),
                             },
                             |w, c| {
                                 let t = rayon::current_thread_index().unwrap_or(0) % dfs.len();
                                 let mut df = dfs[t].lock().expect("not poisoned");
-                                process(c, spec, w, &mut df, split_seed, fraction)
+                                process(c, spec, w, &mut df, split_seed, fraction, sketch_size)
                             },
                         )
                         .collect()

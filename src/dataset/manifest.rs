@@ -81,6 +81,19 @@ pub struct DocFreqEntry {
     pub checksum: String,
 }
 
+/// One token-sketch file (one per ingest batch that kept a sketch).
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct SketchFileEntry {
+    /// File name inside the dataset folder.
+    pub file: String,
+    /// The ingest batch.
+    pub batch: u32,
+    /// Tokens listed.
+    pub tokens: u64,
+    /// The file's header checksum, hex.
+    pub checksum: String,
+}
+
 /// Rule that routes rows to the validation split.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct SplitRule {
@@ -166,6 +179,10 @@ pub struct Manifest {
     pub shards: Vec<ShardEntry>,
     /// Document-frequency files, one per batch.
     pub doc_freq: Vec<DocFreqEntry>,
+    /// Token-sketch files, one per batch that kept a sketch (absent in
+    /// manifests written before sketches existed).
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub sketches: Vec<SketchFileEntry>,
     /// Ingest runs.
     pub batches: Vec<Batch>,
     /// Next free shard number.
@@ -331,6 +348,8 @@ pub(crate) mod tests {
                 raw_counts: false,
                 text_fields: vec!["text".into()],
                 numeric_fields: vec![],
+                mask_digits: false,
+                mask_emails: false,
             },
             positive: Some("spam".into()),
             split: SplitRule {
@@ -358,6 +377,7 @@ pub(crate) mod tests {
                 batch: 0,
             }],
             doc_freq: vec![],
+            sketches: vec![],
             batches: vec![],
             next_shard: 1,
         }

@@ -5,12 +5,14 @@
 //! DIR/train-000000.tms ...   training shards
 //! DIR/valid-000007.tms ...   validation shards
 //! DIR/docfreq-000009.tmd     document frequencies of one ingest batch
+//! DIR/sketch-000010.tmk      token sketch of one ingest batch (unless --no-sketch)
 //! DIR/.lock                  present while a command writes the dataset
 //! ```
 
 pub mod docfreq;
 pub mod ingest;
 pub mod manifest;
+pub mod sketch;
 
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
@@ -107,6 +109,22 @@ pub fn verify(dir: &Path) -> Result<VerifyReport> {
                 });
             }
             Ok(())
+        });
+        if let Err(err) = res {
+            r.problems.push(err);
+        }
+    }
+    for e in &m.sketches {
+        r.checked += 1;
+        let path = file_in(dir, &e.file);
+        let res = sketch::read(&path).and_then(|(s, sum)| {
+            if format!("{sum:016x}") != e.checksum {
+                return Err(Error::Mismatch {
+                    path: path.clone(),
+                    what: "token sketch is not the file the manifest lists".into(),
+                });
+            }
+            s.check(&m.features, &path)
         });
         if let Err(err) = res {
             r.problems.push(err);

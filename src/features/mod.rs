@@ -37,6 +37,12 @@ const PHI: u64 = 0x9E37_79B9_7F4A_7C15;
 const CHAR_SALT: u64 = 0x6368_6172_6772_616D; // "chargram"
 /// Salt for numeric features.
 const NUMERIC_SALT: u64 = 0x6E75_6D65_7269_6321; // "numeric!"
+/// The token that stands for a run of digits under `mask_digits`: `order12345`
+/// becomes `order#`, `2026` becomes `#`. It holds a character the tokenizer never
+/// keeps, so it cannot be mistaken for a word.
+pub const DIGITS_PLACEHOLDER: &str = "#";
+/// The token that stands for an e-mail-like span under `mask_emails`.
+pub const EMAIL_PLACEHOLDER: &str = "@email";
 /// Longest token kept whole; longer runs are cut (bounded work per token).
 pub const MAX_TOKEN_BYTES: usize = 256;
 /// Accepted range of `log2_buckets`.
@@ -95,6 +101,18 @@ pub struct FeatureConfig {
     pub text_fields: Vec<String>,
     /// Numeric field names.
     pub numeric_fields: Vec<String>,
+    /// Replace every run of digits inside a token by [`DIGITS_PLACEHOLDER`]
+    /// before hashing (absent in files written before it existed: off).
+    #[serde(default, skip_serializing_if = "is_false")]
+    pub mask_digits: bool,
+    /// Replace every e-mail-like span of the text by the token
+    /// [`EMAIL_PLACEHOLDER`] before tokenizing (absent in older files: off).
+    #[serde(default, skip_serializing_if = "is_false")]
+    pub mask_emails: bool,
+}
+
+fn is_false(b: &bool) -> bool {
+    !*b
 }
 
 impl FeatureConfig {
@@ -342,6 +360,142 @@ pub fn tokenize(text: &[u8], buf: &mut Vec<u8>, mut emit: impl FnMut(&[u8])) -> 
     invalid
 }
 
+/// Which masks apply before hashing (see [`FeatureConfig::mask_digits`] and
+/// [`FeatureConfig::mask_emails`]).
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
+pub struct Masks {
+    /// Digit runs become [`DIGITS_PLACEHOLDER`].
+    pub digits: bool,
+    /// E-mail-like spans become [`EMAIL_PLACEHOLDER`].
+    pub emails: bool,
+}
+
+impl Masks {
+    /// The masks of a feature configuration.
+    pub fn of(cfg: &FeatureConfig) -> Masks {
+        Masks {
+            digits: cfg.mask_digits,
+            emails: cfg.mask_emails,
+        }
+    }
+
+    /// Whether any mask is on.
+    pub fn any(self) -> bool {
+        self.digits || self.emails
+    }
+}
+
+/// Bytes that may form the part of an e-mail-like span left of `@`: ASCII
+/// letters, digits, `.`, `_`, `%`, `+`, `-`, and any non-ASCII byte.
+fn local_byte(b: u8) -> bool {
+    b.is_ascii_alphanumeric() || matches!(b, b'.' | b'_' | b'%' | b'+' | b'-') || b >= 0x80
+}
+
+/// Bytes that may form the part right of `@`: ASCII letters, digits, `.`, `-`,
+/// and any non-ASCII byte.
+fn domain_byte(b: u8) -> bool {
+    b.is_ascii_alphanumeric() || matches!(b, b'.' | b'-') || b >= 0x80
+}
+
+/// The next e-mail-like span of `text` at or after `from`, as a byte range.
+///
+/// The rule (ours; a common-practice approximation, not RFC 5322): an `@` with
+/// at least one local byte before it, and after it a domain of at least two
+/// labels separated by dots, the last label at least two bytes long; dots and
+/// hyphens at either end of the domain are not part of the span.
+pub fn find_email(text: &[u8], from: usize) -> Option<std::ops::Range<usize>> {
+    let mut at = from;
+    while let Some(i) = memchr::memchr(b'@', &text[at..]) {
+        let a = at + i;
+        at = a + 1;
+        let mut s = a;
+        while s > 0 && local_byte(text[s - 1]) {
+            s -= 1;
+        }
+        if s == a {
+            continue;
+        }
+        let mut e = a + 1;
+        while e < text.len() && domain_byte(text[e]) {
+            e += 1;
+        }
+        while e > a + 1 && matches!(text[e - 1], b'.' | b'-') {
+            e -= 1;
+        }
+        let domain = &text[a + 1..e];
+        if domain.first().is_some_and(|&b| b == b'.' || b == b'-') {
+            continue;
+        }
+        match domain.iter().rposition(|&b| b == b'.') {
+            Some(d) if d > 0 && domain.len() - d > 2 => return Some(s..e),
+            _ => continue,
+        }
+    }
+    None
+}
+
+/// Whether a token holds a digit (ASCII, or any Unicode numeric character).
+fn has_digit(tok: &[u8]) -> bool {
+    tok.iter().any(|&b| b.is_ascii_digit())
+        || (!tok.is_ascii()
+            && std::str::from_utf8(tok).is_ok_and(|s| s.chars().any(char::is_numeric)))
+}
+
+/// Replace every maximal run of numeric characters of `tok` by
+/// [`DIGITS_PLACEHOLDER`], writing the result into `out`.
+pub fn mask_digit_runs(tok: &[u8], out: &mut Vec<u8>) {
+    out.clear();
+    let text = String::from_utf8_lossy(tok);
+    let mut in_run = false;
+    for c in text.chars() {
+        if c.is_numeric() {
+            if !in_run {
+                out.extend_from_slice(DIGITS_PLACEHOLDER.as_bytes());
+                in_run = true;
+            }
+        } else {
+            in_run = false;
+            let mut tmp = [0u8; 4];
+            out.extend_from_slice(c.encode_utf8(&mut tmp).as_bytes());
+        }
+    }
+}
+
+/// [`tokenize`] with masks applied: e-mail-like spans are cut out of the text
+/// and stand as one [`EMAIL_PLACEHOLDER`] token where they were, and digit runs
+/// inside tokens become [`DIGITS_PLACEHOLDER`]. `emit` gets each token and
+/// whether it is a placeholder through and through (such tokens get no
+/// character n-grams). Returns the invalid UTF-8 sequences met.
+pub fn tokenize_masked(
+    text: &[u8],
+    masks: Masks,
+    buf: &mut Vec<u8>,
+    masked: &mut Vec<u8>,
+    mut emit: impl FnMut(&[u8], bool),
+) -> u32 {
+    let mut on_token = |tok: &[u8], email: bool| {
+        if email {
+            emit(EMAIL_PLACEHOLDER.as_bytes(), true);
+        } else if masks.digits && has_digit(tok) {
+            mask_digit_runs(tok, masked);
+            emit(masked, masked == DIGITS_PLACEHOLDER.as_bytes());
+        } else {
+            emit(tok, false);
+        }
+    };
+    if !masks.emails {
+        return tokenize(text, buf, |t| on_token(t, false));
+    }
+    let mut invalid = 0;
+    let mut pos = 0;
+    while let Some(span) = find_email(text, pos) {
+        invalid += tokenize(&text[pos..span.start], buf, |t| on_token(t, false));
+        on_token(&[], true);
+        pos = span.end;
+    }
+    invalid + tokenize(&text[pos..], buf, |t| on_token(t, false))
+}
+
 /// What one call to [`Featurizer::add_text`] saw.
 #[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
 pub struct TextStats {
@@ -359,6 +513,7 @@ pub struct Featurizer {
     field_seeds: Vec<u64>,
     numeric_hashes: Vec<u64>,
     token: Vec<u8>,
+    masked: Vec<u8>,
     padded: Vec<u8>,
     bounds: Vec<usize>,
     recent: [u64; 5],
@@ -392,6 +547,7 @@ impl Featurizer {
                 .collect(),
             cfg: cfg.clone(),
             token: Vec::with_capacity(MAX_TOKEN_BYTES + 8),
+            masked: Vec::new(),
             padded: Vec::with_capacity(MAX_TOKEN_BYTES + 8),
             bounds: Vec::with_capacity(MAX_TOKEN_BYTES + 8),
             recent: [0; 5],
@@ -414,21 +570,37 @@ impl Featurizer {
 
     /// Add the text of field number `field` (index into `text_fields`).
     pub fn add_text(&mut self, field: usize, text: &[u8]) -> TextStats {
+        self.add_text_with(field, text, |_, _| {})
+    }
+
+    /// [`Featurizer::add_text`] that also calls `on_word(token, hash)` with every
+    /// word token (after masking) and its unigram hash, in text order: the hook
+    /// the token sketch of ingest uses. A no-op hook costs nothing.
+    #[inline]
+    pub fn add_text_with(
+        &mut self,
+        field: usize,
+        text: &[u8],
+        mut on_word: impl FnMut(&[u8], u64),
+    ) -> TextStats {
         let seed = self.field_seeds[field];
         let mask = self.mask;
         let n = self.cfg.ngrams as usize;
         let chars = self.cfg.char_ngrams;
+        let masks = Masks::of(&self.cfg);
         let mut count = 0usize;
         let Featurizer {
             token,
+            masked,
             padded,
             bounds,
             recent,
             text: out,
             ..
         } = self;
-        let invalid = tokenize(text, token, |tok| {
+        let on_token = |tok: &[u8], placeholder: bool| {
             let h = xxh3_64_with_seed(tok, seed);
+            on_word(tok, h);
             out.push(key(h, mask));
             if n > 1 {
                 // `recent` holds the previous min(count, n-1) unigram hashes,
@@ -443,11 +615,17 @@ impl Featurizer {
                     recent.copy_within(1..n, 0);
                 }
             }
-            if let Some(cn) = chars {
+            if let (Some(cn), false) = (chars, placeholder) {
                 char_grams(tok, cn, seed, mask, padded, bounds, out);
             }
             count += 1;
-        });
+        };
+        let invalid = if masks.any() {
+            tokenize_masked(text, masks, token, masked, on_token)
+        } else {
+            let mut on_token = on_token;
+            tokenize(text, token, |t| on_token(t, false))
+        };
         TextStats {
             tokens: count as u32,
             invalid_utf8: invalid,
@@ -597,6 +775,8 @@ mod tests {
             raw_counts: false,
             text_fields: vec!["text".into()],
             numeric_fields: vec![],
+            mask_digits: false,
+            mask_emails: false,
         }
     }
 
@@ -735,5 +915,110 @@ mod tests {
         assert!("5..3".parse::<CharNgrams>().is_err());
         assert!("0..3".parse::<CharNgrams>().is_err());
         assert_eq!("2..4".parse::<CharNgrams>().unwrap().to_string(), "2..4");
+    }
+
+    fn masked(s: &str, digits: bool, emails: bool) -> Vec<(String, bool)> {
+        let mut out = Vec::new();
+        let (mut buf, mut m) = (Vec::new(), Vec::new());
+        tokenize_masked(
+            s.as_bytes(),
+            Masks { digits, emails },
+            &mut buf,
+            &mut m,
+            |t, p| out.push((String::from_utf8(t.to_vec()).unwrap(), p)),
+        );
+        out
+    }
+
+    fn words(v: Vec<(String, bool)>) -> Vec<String> {
+        v.into_iter().map(|x| x.0).collect()
+    }
+
+    #[test]
+    fn digit_runs_become_one_placeholder() {
+        assert_eq!(
+            masked("Order 12345 ref AB12cd3 x2", true, false),
+            [
+                ("order".to_string(), false),
+                ("#".into(), true),
+                ("ref".into(), false),
+                ("ab#cd#".into(), false),
+                ("x#".into(), false)
+            ]
+        );
+        // Unicode numerics (Arabic-Indic digits, superscripts) are digits too.
+        assert_eq!(words(masked("٣٤ km² 1½", true, false)), ["#", "km#", "#"]);
+        // Off: untouched.
+        assert_eq!(words(masked("ab12", false, false)), ["ab12"]);
+    }
+
+    #[test]
+    fn email_like_spans_become_one_placeholder() {
+        assert_eq!(
+            words(masked(
+                "write to Anna.Berg+ferry@quillmere-coop.example, or a@b.cd.",
+                false,
+                true
+            )),
+            ["write", "to", "@email", "or", "@email"]
+        );
+        // Not e-mail-like: no local part, no dot in the domain, a one-letter
+        // top-level label, a domain starting with a dot.
+        assert_eq!(
+            words(masked(
+                "@home x@localhost y@site.c z@.example.org",
+                false,
+                true
+            )),
+            [
+                "home",
+                "x",
+                "localhost",
+                "y",
+                "site",
+                "c",
+                "z",
+                "example",
+                "org"
+            ]
+        );
+        assert_eq!(find_email(b"mail me: jo@ex.org.", 0), Some(9..18));
+        // The placeholder gets no character n-grams; both masks together.
+        assert_eq!(
+            masked("call 0123 or jo99@ex.org", true, true),
+            [
+                ("call".to_string(), false),
+                ("#".into(), true),
+                ("or".into(), false),
+                ("@email".into(), true)
+            ]
+        );
+    }
+
+    #[test]
+    fn masks_are_stored_only_when_on_and_change_the_row() {
+        let c = cfg();
+        let json = serde_json::to_string(&c).unwrap();
+        assert!(!json.contains("mask"), "{json}");
+        let back: FeatureConfig = serde_json::from_str(&json).unwrap();
+        assert_eq!(back, c);
+        let mut m = cfg();
+        m.mask_digits = true;
+        assert!(serde_json::to_string(&m)
+            .unwrap()
+            .contains("\"mask_digits\":true"));
+        let mut plain = Featurizer::new(&c).unwrap();
+        let mut masking = Featurizer::new(&m).unwrap();
+        // Different numbers hash alike under the mask, apart without it.
+        assert_eq!(
+            row(&mut masking, "ticket 1234"),
+            row(&mut masking, "ticket 98")
+        );
+        assert_ne!(row(&mut plain, "ticket 1234"), row(&mut plain, "ticket 98"));
+        // Text without digits hashes the same either way.
+        assert_eq!(
+            row(&mut masking, "ferry late"),
+            row(&mut plain, "ferry late")
+        );
     }
 }

@@ -10,6 +10,10 @@
 //! | 2  | `weights` | `f32`, `M × D`, model-major                           |
 //! | 3  | `biases`  | `f32`, `M`                                            |
 //! | 4  | `idf`     | `f32`, `D` (only when trained with idf)               |
+//! | 5  | `sketch`  | the dataset's token sketch (optional; layout in [`crate::dataset::sketch`]) |
+//!
+//! A model without section 5 (older files, or data ingested with `--no-sketch`)
+//! loads as a model without a sketch; builds that predate it ignore it.
 //!
 //! Written atomically; loading checks the header, sizes, every checksum and that
 //! the metadata agrees with the sections.
@@ -19,6 +23,7 @@ use std::path::Path;
 use serde::{Deserialize, Serialize};
 
 use crate::container::{self, cast_section, Container, ContainerWriter, Kind};
+use crate::dataset::sketch::TokenSketch;
 use crate::error::{Error, Result};
 use crate::features::FeatureConfig;
 use crate::input::InputSpec;
@@ -31,6 +36,7 @@ const SEC_META: u32 = 1;
 const SEC_WEIGHTS: u32 = 2;
 const SEC_BIASES: u32 = 3;
 const SEC_IDF: u32 = 4;
+const SEC_SKETCH: u32 = 5;
 
 fn section_name(id: u32) -> String {
     match id {
@@ -38,6 +44,7 @@ fn section_name(id: u32) -> String {
         SEC_WEIGHTS => "weights".into(),
         SEC_BIASES => "biases".into(),
         SEC_IDF => "idf".into(),
+        SEC_SKETCH => "sketch".into(),
         other => format!("unknown section {other}"),
     }
 }
@@ -141,6 +148,8 @@ pub struct Model {
     pub biases: Vec<f32>,
     /// idf factors, if trained with them.
     pub idf: Option<Vec<f32>>,
+    /// The training data's token sketch, if it kept one.
+    pub sketch: Option<TokenSketch>,
 }
 
 impl Model {
@@ -222,12 +231,15 @@ impl Model {
     pub fn save(&self, path: &Path) -> Result<()> {
         self.check(path)?;
         let meta = serde_json::to_vec_pretty(&self.meta).expect("metadata serialises");
-        let mut w = ContainerWriter::create(path, Kind::Model, VERSION, 4)?;
+        let mut w = ContainerWriter::create(path, Kind::Model, VERSION, 5)?;
         w.section(SEC_META, &meta)?;
         w.section(SEC_WEIGHTS, bytemuck::cast_slice(&self.weights))?;
         w.section(SEC_BIASES, bytemuck::cast_slice(&self.biases))?;
         if let Some(idf) = &self.idf {
             w.section(SEC_IDF, bytemuck::cast_slice(idf))?;
+        }
+        if let Some(sk) = &self.sketch {
+            w.section(SEC_SKETCH, &sk.to_bytes())?;
         }
         w.set_params([
             self.models() as u64,
@@ -265,11 +277,19 @@ impl Model {
         } else {
             None
         };
+        let sketch = if c.header().sections.iter().any(|s| s.id == SEC_SKETCH) {
+            let sk = TokenSketch::from_bytes(c.section(SEC_SKETCH, "sketch")?, path)?;
+            sk.check(&meta.features, path)?;
+            Some(sk)
+        } else {
+            None
+        };
         let model = Model {
             meta,
             weights: weights.to_vec(),
             biases: biases.to_vec(),
             idf,
+            sketch,
         };
         let [m, d, _, _] = c.header().params;
         if m as usize != model.models() || d as usize != model.dim() {

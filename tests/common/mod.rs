@@ -248,16 +248,17 @@ pub fn contents(dir: &Path) -> BTreeMap<String, Vec<u8>> {
         .collect()
 }
 
-/// The binary files of a dataset (shards and document frequencies) with their bytes.
+/// The binary files of a dataset (shards, document frequencies, token
+/// sketches) with their bytes.
 pub fn data_files(dir: &Path) -> BTreeMap<String, Vec<u8>> {
     contents(dir)
         .into_iter()
-        .filter(|(n, _)| n.ends_with(".tms") || n.ends_with(".tmd"))
+        .filter(|(n, _)| n.ends_with(".tms") || n.ends_with(".tmd") || n.ends_with(".tmk"))
         .collect()
 }
 
-/// Assert that two datasets hold byte-identical shards and document-frequency
-/// files under the same names.
+/// Assert that two datasets hold byte-identical shards, document-frequency
+/// files and token sketches under the same names.
 #[track_caller]
 pub fn assert_same_data(a: &Path, b: &Path) {
     let (fa, fb) = (data_files(a), data_files(b));
@@ -484,6 +485,30 @@ pub fn train(dir: &Path, model: &Path, extra: &[&str]) -> Out {
     tamis(args)
 }
 
+/// `rows` invented messages (generator seed `seed`) written to `work/NAME.tsv`,
+/// ingested into `work/NAME` with `ingest_extra` and trained for 3 epochs with
+/// `train_extra` into `work/NAME.tmm`; returns (dataset, model).
+pub fn synth_model(
+    work: &Path,
+    name: &str,
+    rows: u64,
+    seed: u64,
+    ingest_extra: &[&str],
+    train_extra: &[&str],
+) -> (PathBuf, PathBuf) {
+    let input = work.join(format!("{name}.tsv"));
+    synth_tsv(&input, rows, seed);
+    let dir = work.join(name);
+    let mut a = vec!["-q"];
+    a.extend_from_slice(ingest_extra);
+    ingest(&[&input], &dir, &a).ok();
+    let m = work.join(format!("{name}.tmm"));
+    let mut t = vec!["--epochs", "3", "-q"];
+    t.extend_from_slice(train_extra);
+    train(&dir, &m, &t).ok();
+    (dir, m)
+}
+
 /// `tamis eval MODEL DATA... EXTRA... --json`, parsed (the run must succeed).
 pub fn eval_json(model: &Path, data: &[&str], extra: &[&str]) -> serde_json::Value {
     let mut args: Vec<String> = vec!["eval".into(), s(model).into()];
@@ -541,6 +566,8 @@ pub const MODEL_WEIGHTS: u32 = 2;
 pub const MODEL_BIASES: u32 = 3;
 /// idf section id (`f32`, dimension).
 pub const MODEL_IDF: u32 = 4;
+/// Model section id of the token sketch (src/model/mod.rs).
+pub const MODEL_SKETCH: u32 = 5;
 
 /// The metadata section of a model file, parsed as plain JSON.
 pub fn model_meta(path: &Path) -> serde_json::Value {
