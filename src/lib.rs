@@ -11,6 +11,9 @@
 //!   → solver    averaged Pegasos over row views          (solver)
 //!   → training  epochs over shards, validation, logging  (train)
 //!   → model     settings + labels + weights, scoring     (model)
+//!   → eval      metrics, curves, intervals               (eval)
+//!   → calibrate thresholds, Platt scaling                (calibrate)
+//!   → report    the HTML page of plots                   (report)
 //! ```
 //!
 //! # Example
@@ -40,6 +43,7 @@ compile_error!(
     "tamis maps its little-endian files directly and supports little-endian targets only"
 );
 
+pub mod calibrate;
 pub mod container;
 pub mod dataset;
 pub mod error;

@@ -414,6 +414,7 @@ fn run(
             },
             epochs,
             dataset_fingerprint: format!("{:016x}", m.fingerprint()),
+            calibration: None,
         },
         weights,
         biases,
