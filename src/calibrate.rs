@@ -12,13 +12,19 @@
 //! * [`Calibration`] is what the model file stores (an optional field of the
 //!   model metadata).
 
+use std::path::Path;
+
 use serde::{Deserialize, Serialize};
 
-use crate::eval::rank::{Counts, Ranking};
+use crate::error::{Error, Result};
+use crate::eval::rank::{self, Counts, Ranking};
+use crate::eval::ScoredRows;
+use crate::model::Model;
+use crate::solver::Loss;
 
 /// What a threshold must achieve on the validation split.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
-#[serde(rename_all = "snake_case", tag = "kind", content = "value")]
+#[serde(rename_all = "snake_case")]
 pub enum Target {
     /// False-positive rate at most this; recall as high as possible.
     MaxFalsePositiveRate(f64),
@@ -229,6 +235,198 @@ pub struct Calibration {
     pub rows: u64,
     /// Fingerprint of the dataset they came from.
     pub dataset_fingerprint: String,
+}
+
+/// Probability quality of one model's scores: Brier score and expected
+/// calibration error.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct Quality {
+    /// Brier score.
+    pub brier: f64,
+    /// Expected calibration error (10 equal-width bins).
+    pub ece: f64,
+}
+
+impl Quality {
+    fn of(p: &[f64], y: &[bool]) -> Option<Quality> {
+        Some(Quality {
+            brier: rank::brier(p, y)?,
+            ece: rank::expected_calibration_error(p, y)?,
+        })
+    }
+}
+
+/// A rate with its Wilson 95% interval.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct Rate {
+    /// The rate.
+    pub value: f64,
+    /// Lower end of the interval.
+    pub low: f64,
+    /// Upper end of the interval.
+    pub high: f64,
+}
+
+impl Rate {
+    /// `k` of `n`, `None` when `n = 0`.
+    pub fn of(k: u64, n: u64) -> Option<Rate> {
+        let (low, high) = rank::wilson(k, n, rank::Z95)?;
+        Some(Rate {
+            value: k as f64 / n as f64,
+            low,
+            high,
+        })
+    }
+}
+
+/// The operating point chosen for one model, as reported.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Point {
+    /// Rows scoring at least this are labelled positive.
+    pub threshold: f64,
+    /// Whether the target is met (else this is the closest reachable point).
+    pub met: bool,
+    /// Validation counts.
+    pub counts: Counts,
+    /// Precision, `None` when nothing is labelled positive.
+    pub precision: Option<Rate>,
+    /// Recall.
+    pub recall: Option<Rate>,
+    /// False-positive rate.
+    pub false_positive_rate: Option<Rate>,
+}
+
+/// What calibration found for one model.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct ModelReport {
+    /// The class the model scores.
+    pub label: String,
+    /// Validation rows of the class.
+    pub positives: u64,
+    /// Validation rows of other classes.
+    pub negatives: u64,
+    /// The operating point, when a target applies to this model.
+    pub point: Option<Point>,
+    /// Platt scaling, for hinge and squared-hinge models.
+    pub platt: Option<Platt>,
+    /// Probabilities before: `σ(score)`, the margin read as log-odds.
+    pub before: Option<Quality>,
+    /// Probabilities after: Platt scaling (`None` for logistic models, which are
+    /// not rescaled).
+    pub after: Option<Quality>,
+}
+
+/// The outcome of [`calibrate`].
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Report {
+    /// The target, if any.
+    pub target: Option<Target>,
+    /// Validation rows used.
+    pub rows: u64,
+    /// Per model.
+    pub models: Vec<ModelReport>,
+    /// Whether every target was met (a model is changed only then).
+    pub met: bool,
+    /// What to store in the model.
+    #[serde(skip)]
+    pub calibration: Calibration,
+}
+
+/// Calibrate `model` on the scored validation rows of the dataset at `dir`:
+/// thresholds for `target` (for every model, or only the model of class
+/// `only`), Platt scaling for hinge and squared-hinge models. Fails with
+/// [`Error::Insufficient`] when a model the calibration concerns lacks
+/// positive or negative rows.
+pub fn calibrate(
+    model: &Model,
+    rows: &ScoredRows,
+    dir: &Path,
+    dataset_fingerprint: &str,
+    target: Option<Target>,
+    only: Option<usize>,
+) -> Result<Report> {
+    let labels = model.meta.model_labels.clone();
+    let platt_wanted = model.meta.loss != Loss::Logistic;
+    let mut reports = Vec::new();
+    let mut thresholds: Vec<f64> = match model.thresholds() {
+        Some(t) => t.to_vec(),
+        None => vec![0.0; model.models()],
+    };
+    let mut platts = Vec::new();
+    for m in 0..model.models() {
+        let (s, y) = rows.one_vs_rest(m);
+        let r = Ranking::new(&s, &y);
+        let concerned = platt_wanted || (target.is_some() && only.is_none_or(|o| o == m));
+        if concerned && (r.positives == 0 || r.negatives == 0) {
+            let (missing, kind) = if r.positives == 0 {
+                (&labels[m], "no rows of the class")
+            } else {
+                (&labels[m], "only rows of the class")
+            };
+            return Err(Error::Insufficient {
+                path: dir.to_path_buf(),
+                what: format!(
+                    "the validation split ({} rows) has {kind} {missing:?}: calibration needs both positive and negative rows; ingest with a larger --validation fraction or more data",
+                    rows.rows()
+                ),
+            });
+        }
+        let point = match target {
+            Some(t) if only.is_none_or(|o| o == m) => {
+                let c = choose(&r, t).expect("positives checked above");
+                thresholds[m] = c.threshold;
+                let k = c.counts;
+                Some(Point {
+                    threshold: c.threshold,
+                    met: c.met,
+                    counts: k,
+                    precision: Rate::of(k.tp, k.tp + k.fp),
+                    recall: Rate::of(k.tp, k.tp + k.fn_),
+                    false_positive_rate: Rate::of(k.fp, k.fp + k.tn),
+                })
+            }
+            _ => None,
+        };
+        let raw: Vec<f64> = s.iter().map(|&x| rank::sigmoid(x)).collect();
+        let before = Quality::of(&raw, &y);
+        let (platt, after) = if platt_wanted {
+            let p = Platt::fit(&s, &y).ok_or_else(|| Error::Insufficient {
+                path: dir.to_path_buf(),
+                what: format!("Platt scaling of {:?} did not converge", labels[m]),
+            })?;
+            let cal: Vec<f64> = s.iter().map(|&x| p.probability(x)).collect();
+            platts.push(p);
+            (Some(p), Quality::of(&cal, &y))
+        } else {
+            (None, None)
+        };
+        reports.push(ModelReport {
+            label: labels[m].clone(),
+            positives: r.positives,
+            negatives: r.negatives,
+            point,
+            platt,
+            before,
+            after,
+        });
+    }
+    let met = reports
+        .iter()
+        .all(|r| r.point.as_ref().is_none_or(|p| p.met));
+    let keep_thresholds = target.is_some() || model.thresholds().is_some();
+    Ok(Report {
+        target,
+        rows: rows.rows() as u64,
+        met,
+        calibration: Calibration {
+            target: target.or(model.meta.calibration.as_ref().and_then(|c| c.target)),
+            thresholds: keep_thresholds.then_some(thresholds),
+            platt: platt_wanted.then_some(platts),
+            rows: rows.rows() as u64,
+            dataset_fingerprint: dataset_fingerprint.to_string(),
+        },
+        models: reports,
+    })
 }
 
 #[cfg(test)]

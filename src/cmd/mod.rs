@@ -9,6 +9,7 @@ macro_rules! outln {
     }};
 }
 
+pub mod calibrate;
 pub mod demo;
 pub mod eval;
 pub mod ingest;
@@ -44,6 +45,9 @@ enum Command {
     Score(Box<score::Args>),
     /// Measure a model on a dataset split or on labelled raw text.
     Eval(Box<eval::Args>),
+    /// Choose score thresholds for a target (false-positive rate, precision or
+    /// recall) and fit Platt scaling on a dataset's validation split; store them in the model.
+    Calibrate(Box<calibrate::Args>),
     /// Summarise a dataset: rows, labels, nonzeros, bucket fill, shards.
     Stats(stats::Args),
     /// Recompute every checksum of a dataset or a tamis file and report damage.
@@ -58,6 +62,7 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::Ingest(a) => ingest::run(*a),
         Command::Score(a) => score::run(*a),
         Command::Eval(a) => eval::run(*a),
+        Command::Calibrate(a) => calibrate::run(*a),
         Command::Stats(a) => stats::run(a),
         Command::Train(a) => train::run(*a),
         Command::Verify(a) => verify::run(a),
