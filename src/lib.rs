@@ -51,6 +51,7 @@ pub mod eval;
 pub mod features;
 pub mod input;
 pub mod model;
+pub mod report;
 pub mod score;
 pub mod shard;
 pub mod solver;

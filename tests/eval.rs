@@ -592,3 +592,115 @@ fn a_damaged_shard_is_named() {
 fn help_explains_every_option() {
     assert_help_explains_everything(&["eval"]);
 }
+
+/// The report parsed with an HTML5 parser (the `scraper` crate, which uses the
+/// html5ever tree builder of the WHATWG parsing algorithm): the six figures in
+/// order, one `<svg>` each and no other, no script, nothing fetched from
+/// elsewhere, the key figures of `--json` in the table, labels escaped.
+fn check_report(path: &Path, m: &Value, labels: &[String]) {
+    let text = std::fs::read_to_string(path).unwrap();
+    let doc = scraper::Html::parse_document(&text);
+    assert!(doc.errors.is_empty(), "HTML parse errors: {:?}", doc.errors);
+    let sel = |s: &str| scraper::Selector::parse(s).unwrap();
+    let ids: Vec<&str> = doc
+        .select(&sel("figure"))
+        .map(|f| f.value().attr("id").unwrap())
+        .collect();
+    assert_eq!(
+        ids,
+        [
+            "roc",
+            "pr",
+            "histograms",
+            "confusion",
+            "reliability",
+            "training"
+        ]
+    );
+    for f in doc.select(&sel("figure")) {
+        let n = f.select(&sel("svg")).count();
+        assert_eq!(n, 1, "figure {:?} holds {n} svg", f.value().attr("id"));
+        // Something is drawn in it.
+        assert!(f.select(&sel("svg polyline, svg path, svg rect")).count() > 3);
+    }
+    assert_eq!(doc.select(&sel("svg")).count(), 6);
+    assert_eq!(doc.select(&sel("script")).count(), 0);
+    let external: Vec<_> = doc.select(&sel("[src], [href], link")).collect();
+    assert!(external.is_empty(), "external references {external:?}");
+    let rest = text.replace("xmlns=\"http://www.w3.org/2000/svg\"", "");
+    assert!(!rest.contains("http:") && !rest.contains("https:") && !rest.contains("url("));
+    let cells: Vec<String> = doc
+        .select(&sel("td"))
+        .map(|c| c.text().collect::<String>())
+        .collect();
+    assert!(cells.contains(&format!("{:.4}", f(&m["accuracy"]))));
+    assert!(cells.contains(&format!("{:.4}", f(&m["roc_auc"]))));
+    // Every class is named in the confusion grid.
+    let grid: String = doc
+        .select(&sel("figure#confusion svg text"))
+        .map(|t| t.text().collect::<String>())
+        .collect();
+    for l in labels {
+        assert!(grid.contains(l.as_str()), "{l} missing from the grid");
+    }
+}
+
+#[test]
+fn the_report_has_one_svg_per_plot() {
+    let t = tmp();
+    for (name, ingest_extra) in [("multi", vec![]), ("binary", vec!["--positive", "spam"])] {
+        let model = fixture_model(t.path(), name, &ingest_extra, &[]);
+        let dir = t.path().join(name);
+        let page = t.path().join(format!("{name}.html"));
+        let o = tamis(["eval", s(&model), s(&dir), "--json", "--report", s(&page)]);
+        o.ok().stderr_has("wrote");
+        let m: Value = serde_json::from_str(&o.stdout).unwrap();
+        let labels = strings(&m["confusion_labels"]);
+        check_report(&page, &m, &labels);
+        // On raw text too, and no temporary file is left beside it.
+        let page2 = t.path().join(format!("{name}-raw.html"));
+        let o = tamis([
+            "eval",
+            s(&model),
+            s(&fixture("inbox.tsv")),
+            "--report",
+            s(&page2),
+            "--json",
+        ]);
+        o.ok();
+        let m: Value = serde_json::from_str(&o.stdout).unwrap();
+        check_report(&page2, &m, &labels);
+    }
+    let left: Vec<String> = std::fs::read_dir(t.path())
+        .unwrap()
+        .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
+        .filter(|n| n.contains(".tmp-"))
+        .collect();
+    assert!(left.is_empty(), "{left:?}");
+    // A label that needs escaping stays text.
+    let tsv = t.path().join("odd.tsv");
+    std::fs::write(
+        &tsv,
+        "<b>&co\tclaim your free prize now\nferry\tthe ferry timetable for the pier\n".repeat(40),
+    )
+    .unwrap();
+    let dir = t.path().join("odd");
+    ingest(&[&tsv], &dir, &["--validation", "0", "-q"]).ok();
+    let model = t.path().join("odd.tmm");
+    train(&dir, &model, &["--epochs", "2", "-q"]).ok();
+    let page = t.path().join("odd.html");
+    let o = tamis([
+        "eval",
+        s(&model),
+        s(&dir),
+        "--split",
+        "train",
+        "--json",
+        "--report",
+        s(&page),
+    ]);
+    o.ok();
+    let m: Value = serde_json::from_str(&o.stdout).unwrap();
+    check_report(&page, &m, &strings(&m["confusion_labels"]));
+    assert!(!std::fs::read_to_string(&page).unwrap().contains("<b>&co"));
+}

@@ -49,6 +49,11 @@ pub struct Args {
     #[arg(long)]
     pub json: bool,
 
+    /// Also write an HTML page of plots (ROC and precision–recall curves, score
+    /// histograms, confusion grid, reliability diagram, training curves) to FILE.
+    #[arg(long, value_name = "FILE")]
+    pub report: Option<PathBuf>,
+
     /// Threads [default: all cores].
     #[arg(long, short = 'j', value_name = "N")]
     pub threads: Option<usize>,
@@ -218,6 +223,30 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
     };
     let labels = score::decision_labels(&model);
     let m = eval::metrics(&model, &rows, &labels, skipped);
+    if let Some(path) = &a.report {
+        let what = if a.data.len() == 1 && Path::new(&a.data[0]).is_dir() {
+            let split = match a.split {
+                Which::Validation => "validation",
+                Which::Train => "train",
+                Which::All => "all",
+            };
+            format!("{} ({split} split)", a.data[0])
+        } else {
+            a.data.join(", ")
+        };
+        let page = tamis::report::html(&tamis::report::ReportInput {
+            model: &model,
+            rows: &rows,
+            metrics: &m,
+            labels: &labels,
+            model_labels: &model.meta.model_labels,
+            what: &what,
+            model_name: &a.model.display().to_string(),
+        })?;
+        tamis::report::write(path, &page)
+            .with_context(|| format!("cannot write the report {}", path.display()))?;
+        eprintln!("wrote {}", path.display());
+    }
     let mut out = std::io::stdout().lock();
     if a.json {
         serde_json::to_writer_pretty(&mut out, &m)?;
