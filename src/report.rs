@@ -204,22 +204,10 @@ fn curves(inp: &ReportInput<'_>) -> Vec<Curves> {
         .map(|m| {
             let (s, y) = inp.rows.one_vs_rest(m);
             let r = Ranking::new(&s, &y);
-            let c = rank::counts_at(&s, &y, threshold(inp.model, m));
             // Without a stored threshold a binary model is positive above 0, not at 0.
-            let c = if inp.model.thresholds().is_none() {
-                let strict: Vec<bool> = s.iter().map(|&x| x > 0.0).collect();
-                let mut k = rank::Counts::default();
-                for (&p, &t) in strict.iter().zip(&y) {
-                    match (t, p) {
-                        (true, true) => k.tp += 1,
-                        (true, false) => k.fn_ += 1,
-                        (false, true) => k.fp += 1,
-                        (false, false) => k.tn += 1,
-                    }
-                }
-                k
-            } else {
-                c
+            let c = match inp.model.thresholds() {
+                Some(t) => rank::counts_at(&s, &y, t[m]),
+                None => rank::counts_of(s.iter().map(|&x| x > 0.0), &y),
             };
             let point = match (c.false_positive_rate(), c.recall()) {
                 (Some(f), Some(r)) => Some((f, r, c.precision().unwrap_or(1.0))),
@@ -270,6 +258,13 @@ fn xy_chart<'a, 'b>(
     Ok(chart)
 }
 
+/// A large dot in series `i`'s colour with a black ring.
+fn operating_point<'a, 'b: 'a>(chart: &mut Chart<'a, 'b>, p: (f64, f64), i: usize) -> DrawResult {
+    chart.draw_series(std::iter::once(Circle::new(p, 7, colour(i).filled())))?;
+    chart.draw_series(std::iter::once(Circle::new(p, 7, BLACK.stroke_width(1))))?;
+    Ok(())
+}
+
 fn roc_svg(cs: &[Curves]) -> Result<String> {
     svg(560, 480, |root| {
         let mut chart = xy_chart(
@@ -290,12 +285,7 @@ fn roc_svg(cs: &[Curves]) -> Result<String> {
         }
         for (i, c) in cs.iter().enumerate() {
             if let Some((f, r, _)) = c.point {
-                chart.draw_series(std::iter::once(Circle::new((f, r), 7, colour(i).filled())))?;
-                chart.draw_series(std::iter::once(Circle::new(
-                    (f, r),
-                    7,
-                    BLACK.stroke_width(1),
-                )))?;
+                operating_point(&mut chart, (f, r), i)?;
             }
         }
         legend(&mut chart, SeriesLabelPosition::LowerRight)
@@ -316,12 +306,7 @@ fn pr_svg(cs: &[Curves]) -> Result<String> {
         }
         for (i, c) in cs.iter().enumerate() {
             if let Some((_, r, p)) = c.point {
-                chart.draw_series(std::iter::once(Circle::new((r, p), 7, colour(i).filled())))?;
-                chart.draw_series(std::iter::once(Circle::new(
-                    (r, p),
-                    7,
-                    BLACK.stroke_width(1),
-                )))?;
+                operating_point(&mut chart, (r, p), i)?;
             }
         }
         legend(&mut chart, SeriesLabelPosition::LowerLeft)

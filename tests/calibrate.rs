@@ -329,6 +329,50 @@ fn logistic_models_keep_their_probabilities() {
 }
 
 #[test]
+fn calibration_is_an_optional_field_of_the_same_format() {
+    let t = tmp();
+    let (dir, model) = spam_model(t.path(), "v", "hinge");
+    // An uncalibrated model carries no calibration key: exactly the metadata of
+    // files written before calibration existed.
+    let before = std::fs::read(&model).unwrap();
+    assert_eq!(file_header(&before).version, 1);
+    assert!(model_meta(&model).get("calibration").is_none());
+    let out = t.path().join("c.tmm");
+    let (o, _) = calibrate_json(&model, &dir, &["--min-recall", "0.9", "--out", s(&out)]);
+    o.ok();
+    assert_eq!(
+        std::fs::read(&model).unwrap(),
+        before,
+        "--out leaves MODEL alone"
+    );
+    let after = std::fs::read(&out).unwrap();
+    assert_eq!(file_header(&after).version, 1);
+    for id in [MODEL_WEIGHTS, MODEL_BIASES] {
+        assert_eq!(f32_section(&after, id), f32_section(&before, id));
+    }
+    let meta = model_meta(&out);
+    assert_eq!(meta["calibration"]["target"]["min_recall"], 0.9);
+    assert_eq!(
+        meta["calibration"]["rows"],
+        split_scores(&out, &dir, Split::Validation).len()
+    );
+    tamis(["verify", s(&out)]).ok();
+    let left: Vec<String> = std::fs::read_dir(t.path())
+        .unwrap()
+        .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
+        .filter(|n| n.contains(".tmp-"))
+        .collect();
+    assert!(left.is_empty(), "{left:?}");
+    // A calibration that does not fit the model is refused, not applied.
+    let mut m = tamis::model::Model::load(&out).unwrap();
+    m.meta.calibration.as_mut().unwrap().thresholds = Some(vec![0.0, 1.0]);
+    let e = m.save(&t.path().join("bad.tmm")).unwrap_err();
+    assert!(e.to_string().contains("2 thresholds"), "{e}");
+    m.meta.calibration.as_mut().unwrap().thresholds = Some(vec![f64::NAN]);
+    assert!(m.save(&t.path().join("bad.tmm")).is_err());
+}
+
+#[test]
 fn help_explains_every_option() {
     assert_help_explains_everything(&["calibrate"]);
 }

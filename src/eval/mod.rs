@@ -45,6 +45,14 @@ pub struct Weights<'a> {
     pub idf: Option<&'a [f32]>,
 }
 
+/// A shard cut into pieces of 4096 rows `(shard, first row, end)`, the unit of
+/// parallel work of evaluation.
+fn pieces(s: &Shard) -> impl Iterator<Item = (&Shard, usize, usize)> {
+    let n = s.rows();
+    let step = 4096;
+    (0..n.div_ceil(step)).map(move |c| (s, c * step, ((c + 1) * step).min(n)))
+}
+
 /// Evaluate weights on shards: binary if `positive` is set.
 pub fn evaluate(
     shards: &[Shard],
@@ -62,11 +70,7 @@ pub fn evaluate(
     let k = if positive.is_some() { 2 } else { classes };
     let parts: Vec<(f64, f64, Vec<Vec<u64>>)> = shards
         .par_iter()
-        .flat_map_iter(|s| {
-            let n = s.rows();
-            let step = 4096;
-            (0..n.div_ceil(step)).map(move |c| (s, c * step, ((c + 1) * step).min(n)))
-        })
+        .flat_map_iter(pieces)
         .map(|(s, a, b)| {
             let mut conf = vec![vec![0u64; k]; k];
             let mut l = 0.0;
@@ -127,22 +131,7 @@ pub fn evaluate(
 
 /// Per-class precision, recall and F1 from a confusion matrix.
 pub fn per_class(conf: &[Vec<u64>]) -> Vec<(f64, f64, f64)> {
-    let k = conf.len();
-    (0..k)
-        .map(|c| {
-            let tp = conf[c][c] as f64;
-            let predicted: f64 = (0..k).map(|t| conf[t][c] as f64).sum();
-            let actual: f64 = conf[c].iter().map(|&x| x as f64).sum();
-            let p = if predicted > 0.0 { tp / predicted } else { 0.0 };
-            let r = if actual > 0.0 { tp / actual } else { 0.0 };
-            let f = if p + r > 0.0 {
-                2.0 * p * r / (p + r)
-            } else {
-                0.0
-            };
-            (p, r, f)
-        })
-        .collect()
+    per_class_with_undecided(conf, &vec![0; conf.len()])
 }
 
 /// Precision, recall and F1 of one class.
@@ -278,11 +267,7 @@ impl ScoredRows {
 pub fn score_shards(shards: &[Shard], model: &Model, positive: Option<u32>) -> ScoredRows {
     let parts: Vec<ScoredRows> = shards
         .par_iter()
-        .flat_map_iter(|s| {
-            let n = s.rows();
-            let step = 4096;
-            (0..n.div_ceil(step)).map(move |c| (s, c * step, ((c + 1) * step).min(n)))
-        })
+        .flat_map_iter(pieces)
         .map(|(s, a, b)| {
             let mut part = ScoredRows::new(model.models());
             let mut out = Vec::new();

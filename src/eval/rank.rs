@@ -57,9 +57,14 @@ fn ratio(a: u64, b: u64) -> Option<f64> {
 
 /// Counts of labelling positive the rows scoring `≥ threshold`.
 pub fn counts_at(scores: &[f64], positive: &[bool], threshold: f64) -> Counts {
+    counts_of(scores.iter().map(|&s| s >= threshold), positive)
+}
+
+/// Counts of the decisions `decided` (true: labelled positive) against the truth.
+pub fn counts_of(decided: impl Iterator<Item = bool>, positive: &[bool]) -> Counts {
     let mut c = Counts::default();
-    for (&s, &y) in scores.iter().zip(positive) {
-        match (y, s >= threshold) {
+    for (d, &y) in decided.zip(positive) {
+        match (y, d) {
             (true, true) => c.tp += 1,
             (true, false) => c.fn_ += 1,
             (false, true) => c.fp += 1,
