@@ -89,6 +89,16 @@ pub enum Error {
         what: String,
     },
 
+    /// Data that cannot support what was asked of it (a validation split with
+    /// no positive rows, a single class).
+    #[error("{path}: {what}")]
+    Insufficient {
+        /// The dataset or file concerned.
+        path: PathBuf,
+        /// What is missing.
+        what: String,
+    },
+
     /// Too many input lines could not be used.
     #[error("{bad} of {seen} input records are unusable ({fraction:.2}% > --max-bad-fraction {limit}%); nothing was written to the dataset")]
     TooManyBad {

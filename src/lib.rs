@@ -13,6 +13,9 @@
 //!   → checkpoint whole solver state, resume exactly       (checkpoint)
 //!   → model     settings + labels + weights, scoring     (model)
 //!   → explain   weights and scores read in words         (explain)
+//!   → eval      metrics, curves, intervals               (eval)
+//!   → calibrate thresholds, Platt scaling                (calibrate)
+//!   → report    the HTML page of plots                   (report)
 //! ```
 //!
 //! # Example
@@ -44,6 +47,7 @@ compile_error!(
     "tamis maps its little-endian files directly and supports little-endian targets only"
 );
 
+pub mod calibrate;
 pub mod checkpoint;
 pub mod container;
 pub mod dataset;
@@ -53,6 +57,7 @@ pub mod explain;
 pub mod features;
 pub mod input;
 pub mod model;
+pub mod report;
 pub mod score;
 pub mod shard;
 pub mod solver;

@@ -12,9 +12,8 @@ use crate::features::Featurizer;
 use crate::input::{
     parse_chunk, read_inputs, BadReason, Chunk, InputSpec, LabelMode, ParseScratch, ReadMsg,
 };
-use crate::model::Model;
+use crate::model::{Decision, Model, UNDECIDED};
 use crate::shard::Row;
-use crate::solver::Loss;
 
 /// The outcome of one input record.
 #[derive(Debug, Clone, PartialEq)]
@@ -25,12 +24,15 @@ pub enum Outcome {
         input: usize,
         /// 1-based line where it starts.
         line: u64,
-        /// Predicted label.
+        /// Predicted label ([`UNDECIDED`] when a one-vs-rest model with
+        /// thresholds finds no class above its threshold).
         label: String,
         /// The score: the margin `w·x + b` of a binary model, or the largest
         /// one-vs-rest margin.
         score: f64,
-        /// `σ(score)` for logistic models.
+        /// The probability of the positive class (binary) or of the top class's
+        /// model (one-vs-rest, not normalised over classes): Platt scaling for a
+        /// calibrated model, `σ(score)` for a logistic one, else `None`.
         probability: Option<f64>,
         /// The record's own label, when it had one.
         truth: Option<String>,
@@ -68,15 +70,6 @@ pub fn decision_labels(model: &Model) -> Vec<String> {
     }
 }
 
-fn sigmoid(x: f64) -> f64 {
-    if x >= 0.0 {
-        1.0 / (1.0 + (-x).exp())
-    } else {
-        let e = x.exp();
-        e / (1.0 + e)
-    }
-}
-
 struct Worker {
     feat: Featurizer,
     scratch: ParseScratch,
@@ -101,7 +94,6 @@ fn score_chunk(
         val,
         scores,
     } = w;
-    let logistic = model.meta.loss == Loss::Logistic;
     let mut bad = Vec::new();
     parse_chunk(
         chunk,
@@ -136,23 +128,25 @@ fn score_chunk(
                 values: val,
             };
             model.scores(&row, scores);
-            let (label, score) = if model.is_binary() {
-                (names[(scores[0] > 0.0) as usize].clone(), scores[0])
-            } else {
-                let mut best = 0;
-                for (c, &s) in scores.iter().enumerate() {
-                    if s > scores[best] {
-                        best = c;
-                    }
+            // The reported score: the binary margin, or the highest one-vs-rest
+            // margin (also when no class clears its threshold).
+            let mut best = 0;
+            for (c, &s) in scores.iter().enumerate() {
+                if s > scores[best] {
+                    best = c;
                 }
-                (names[best].clone(), scores[best])
+            }
+            let label = match model.decide(scores) {
+                Decision::Class(c) => names[c].clone(),
+                Decision::Undecided => UNDECIDED.to_string(),
             };
+            let score = scores[best];
             out.push(Outcome::Scored {
                 input: chunk.input,
                 line: f.line,
                 label,
                 score,
-                probability: logistic.then(|| sigmoid(score)),
+                probability: model.probability(best, score),
                 truth: f.label.as_deref().map(str::to_string),
                 scores: if mode == LabelMode::Required {
                     scores.clone()

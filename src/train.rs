@@ -1156,6 +1156,7 @@ pub(crate) fn build_model(
             epochs,
             dataset_fingerprint: format!("{:016x}", m.fingerprint()),
             steps,
+            calibration: None,
         },
         weights,
         biases,

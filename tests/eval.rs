@@ -89,14 +89,23 @@ fn check_consistent(m: &Value, labels: &[String]) {
         keys,
         [
             "accuracy",
+            "average_precision",
+            "brier",
             "confusion",
             "confusion_labels",
+            "expected_calibration_error",
+            "false_positive_rate",
             "hinge_loss",
             "log_loss",
             "macro_f1",
             "per_class",
+            "precision",
+            "recall",
+            "roc_auc",
             "rows",
-            "skipped"
+            "skipped",
+            "thresholds",
+            "undecided"
         ]
     );
     assert_eq!(strings(&m["confusion_labels"]), labels);
@@ -130,6 +139,50 @@ fn check_consistent(m: &Value, labels: &[String]) {
     close(f(&m["macro_f1"]), mean, 1e-12, "macro_f1");
     let h = f(&m["hinge_loss"]);
     assert!(h.is_finite() && h >= 0.0);
+    // Without stored thresholds every row is decided.
+    if m["thresholds"].is_null() {
+        assert!(m["undecided"].as_array().unwrap().iter().all(|x| x == 0));
+    }
+    // The decision figures: binary those of the positive class, else the means.
+    let fpr: Vec<f64> = (0..k)
+        .map(|c| {
+            let fp: u64 = (0..k).filter(|&t| t != c).map(|t| conf[t][c]).sum();
+            let neg: u64 = (0..k)
+                .filter(|&t| t != c)
+                .map(|t| conf[t].iter().sum::<u64>())
+                .sum();
+            fp as f64 / neg.max(1) as f64
+        })
+        .collect();
+    if k == 2 {
+        close(f(&m["precision"]), want[1].0, 1e-12, "precision");
+        close(f(&m["recall"]), want[1].1, 1e-12, "recall");
+        close(f(&m["false_positive_rate"]), fpr[1], 1e-12, "fpr");
+    } else {
+        let kf = k as f64;
+        close(
+            f(&m["precision"]),
+            want.iter().map(|x| x.0).sum::<f64>() / kf,
+            1e-12,
+            "precision",
+        );
+        close(
+            f(&m["recall"]),
+            want.iter().map(|x| x.1).sum::<f64>() / kf,
+            1e-12,
+            "recall",
+        );
+        close(
+            f(&m["false_positive_rate"]),
+            fpr.iter().sum::<f64>() / kf,
+            1e-12,
+            "fpr",
+        );
+    }
+    for key in ["roc_auc", "average_precision"] {
+        let v = f(&m[key]);
+        assert!((0.0..=1.0).contains(&v), "{key} {v}");
+    }
 }
 
 #[test]
@@ -330,6 +383,42 @@ fn raw_input_reports_match_a_recomputation_from_scores() {
     let all = eval_json(&model, &[s(&t.path().join("bin"))], &["--split", "all"]);
     assert_eq!(m["confusion"], all["confusion"]);
     close(f(&m["log_loss"]), f(&all["log_loss"]), 1e-9, "log loss");
+    // ROC AUC by counting pairs (a positive above a negative 1, a tie ½: the
+    // Mann–Whitney reading of the AUC, Hanley and McNeil 1982) and average
+    // precision from its definition Σ (Rₙ − Rₙ₋₁)·Pₙ over distinct
+    // thresholds, both from the printed scores.
+    let pos: Vec<f64> = scores.iter().filter(|x| x.1 == 1).map(|x| x.0).collect();
+    let neg: Vec<f64> = scores.iter().filter(|x| x.1 == 0).map(|x| x.0).collect();
+    let mut pairs = 0.0;
+    for &p in &pos {
+        for &q in &neg {
+            pairs += if p > q {
+                1.0
+            } else if p == q {
+                0.5
+            } else {
+                0.0
+            };
+        }
+    }
+    close(
+        f(&m["roc_auc"]),
+        pairs / (pos.len() * neg.len()) as f64,
+        1e-3,
+        "roc auc",
+    );
+    let mut thresholds: Vec<f64> = scores.iter().map(|x| x.0).collect();
+    thresholds.sort_by(|a, b| b.total_cmp(a));
+    thresholds.dedup();
+    let (mut ap, mut prev_r) = (0.0, 0.0);
+    for t in thresholds {
+        let tp = pos.iter().filter(|&&p| p >= t).count() as f64;
+        let fp = neg.iter().filter(|&&q| q >= t).count() as f64;
+        let r = tp / pos.len() as f64;
+        ap += (r - prev_r) * tp / (tp + fp);
+        prev_r = r;
+    }
+    close(f(&m["average_precision"]), ap, 1e-3, "average precision");
     // Several inputs and standard input count together.
     let o = tamis_with_stdin(
         ["eval", s(&model), s(&inbox), "-", "--json"],
@@ -346,12 +435,13 @@ fn raw_input_reports_match_a_recomputation_from_scores() {
 }
 
 #[test]
-fn log_loss_is_reported_for_binary_logistic_models_only() {
+fn probability_figures_are_reported_for_logistic_models_only() {
+    // (Hinge models get them once calibrated: see tests/calibrate.rs.)
     let t = tmp();
     for (name, ingest_extra, loss, has) in [
         ("bl", vec!["--positive", "spam"], "logistic", true),
         ("bh", vec!["--positive", "spam"], "hinge", false),
-        ("ml", vec![], "logistic", false),
+        ("ml", vec![], "logistic", true),
         ("mh", vec![], "hinge", false),
     ] {
         let model = fixture_model(t.path(), name, &ingest_extra, &["--loss", loss]);
@@ -363,8 +453,14 @@ fn log_loss_is_reported_for_binary_logistic_models_only() {
                 assert!(l > 0.0 && l.is_finite(), "{name}: {l}");
                 // A trained model beats always saying ½: ln 2.
                 assert!(l < std::f64::consts::LN_2, "{name}: {l}");
+                let b = f(&m["brier"]);
+                assert!(b > 0.0 && b < 0.25, "{name}: Brier {b}");
+                let e = f(&m["expected_calibration_error"]);
+                assert!((0.0..1.0).contains(&e), "{name}: ECE {e}");
             } else {
-                assert!(m["log_loss"].is_null(), "{name} {data}: {}", m["log_loss"]);
+                for key in ["log_loss", "brier", "expected_calibration_error"] {
+                    assert!(m[key].is_null(), "{name} {data}: {key} {}", m[key]);
+                }
             }
         }
     }
@@ -495,4 +591,116 @@ fn a_damaged_shard_is_named() {
 #[test]
 fn help_explains_every_option() {
     assert_help_explains_everything(&["eval"]);
+}
+
+/// The report parsed with an HTML5 parser (the `scraper` crate, which uses the
+/// html5ever tree builder of the WHATWG parsing algorithm): the six figures in
+/// order, one `<svg>` each and no other, no script, nothing fetched from
+/// elsewhere, the key figures of `--json` in the table, labels escaped.
+fn check_report(path: &Path, m: &Value, labels: &[String]) {
+    let text = std::fs::read_to_string(path).unwrap();
+    let doc = scraper::Html::parse_document(&text);
+    assert!(doc.errors.is_empty(), "HTML parse errors: {:?}", doc.errors);
+    let sel = |s: &str| scraper::Selector::parse(s).unwrap();
+    let ids: Vec<&str> = doc
+        .select(&sel("figure"))
+        .map(|f| f.value().attr("id").unwrap())
+        .collect();
+    assert_eq!(
+        ids,
+        [
+            "roc",
+            "pr",
+            "histograms",
+            "confusion",
+            "reliability",
+            "training"
+        ]
+    );
+    for f in doc.select(&sel("figure")) {
+        let n = f.select(&sel("svg")).count();
+        assert_eq!(n, 1, "figure {:?} holds {n} svg", f.value().attr("id"));
+        // Something is drawn in it.
+        assert!(f.select(&sel("svg polyline, svg path, svg rect")).count() > 3);
+    }
+    assert_eq!(doc.select(&sel("svg")).count(), 6);
+    assert_eq!(doc.select(&sel("script")).count(), 0);
+    let external: Vec<_> = doc.select(&sel("[src], [href], link")).collect();
+    assert!(external.is_empty(), "external references {external:?}");
+    let rest = text.replace("xmlns=\"http://www.w3.org/2000/svg\"", "");
+    assert!(!rest.contains("http:") && !rest.contains("https:") && !rest.contains("url("));
+    let cells: Vec<String> = doc
+        .select(&sel("td"))
+        .map(|c| c.text().collect::<String>())
+        .collect();
+    assert!(cells.contains(&format!("{:.4}", f(&m["accuracy"]))));
+    assert!(cells.contains(&format!("{:.4}", f(&m["roc_auc"]))));
+    // Every class is named in the confusion grid.
+    let grid: String = doc
+        .select(&sel("figure#confusion svg text"))
+        .map(|t| t.text().collect::<String>())
+        .collect();
+    for l in labels {
+        assert!(grid.contains(l.as_str()), "{l} missing from the grid");
+    }
+}
+
+#[test]
+fn the_report_has_one_svg_per_plot() {
+    let t = tmp();
+    for (name, ingest_extra) in [("multi", vec![]), ("binary", vec!["--positive", "spam"])] {
+        let model = fixture_model(t.path(), name, &ingest_extra, &[]);
+        let dir = t.path().join(name);
+        let page = t.path().join(format!("{name}.html"));
+        let o = tamis(["eval", s(&model), s(&dir), "--json", "--report", s(&page)]);
+        o.ok().stderr_has("wrote");
+        let m: Value = serde_json::from_str(&o.stdout).unwrap();
+        let labels = strings(&m["confusion_labels"]);
+        check_report(&page, &m, &labels);
+        // On raw text too, and no temporary file is left beside it.
+        let page2 = t.path().join(format!("{name}-raw.html"));
+        let o = tamis([
+            "eval",
+            s(&model),
+            s(&fixture("inbox.tsv")),
+            "--report",
+            s(&page2),
+            "--json",
+        ]);
+        o.ok();
+        let m: Value = serde_json::from_str(&o.stdout).unwrap();
+        check_report(&page2, &m, &labels);
+    }
+    let left: Vec<String> = std::fs::read_dir(t.path())
+        .unwrap()
+        .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
+        .filter(|n| n.contains(".tmp-"))
+        .collect();
+    assert!(left.is_empty(), "{left:?}");
+    // A label that needs escaping stays text.
+    let tsv = t.path().join("odd.tsv");
+    std::fs::write(
+        &tsv,
+        "<b>&co\tclaim your free prize now\nferry\tthe ferry timetable for the pier\n".repeat(40),
+    )
+    .unwrap();
+    let dir = t.path().join("odd");
+    ingest(&[&tsv], &dir, &["--validation", "0", "-q"]).ok();
+    let model = t.path().join("odd.tmm");
+    train(&dir, &model, &["--epochs", "2", "-q"]).ok();
+    let page = t.path().join("odd.html");
+    let o = tamis([
+        "eval",
+        s(&model),
+        s(&dir),
+        "--split",
+        "train",
+        "--json",
+        "--report",
+        s(&page),
+    ]);
+    o.ok();
+    let m: Value = serde_json::from_str(&o.stdout).unwrap();
+    check_report(&page, &m, &strings(&m["confusion_labels"]));
+    assert!(!std::fs::read_to_string(&page).unwrap().contains("<b>&co"));
 }

@@ -215,6 +215,7 @@ fn variant(e: &Error) -> &'static str {
         Error::Invalid(_) => "Invalid",
         Error::Mismatch { .. } => "Mismatch",
         Error::TooManyBad { .. } => "TooManyBad",
+        Error::Insufficient { .. } => "Insufficient",
     }
 }
 

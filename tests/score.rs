@@ -4,7 +4,8 @@
 //! score; probabilities of logistic models; JSON Lines output; skipped records
 //! reported with line and reason; the same bytes whatever the thread count;
 //! standard input, several inputs, a closed pipe; and damaged model files,
-//! refused by `score`, `eval` and `verify` with the file named.
+//! refused by `score`, `eval` and `verify` with the file named; a calibrated
+//! model's stored threshold and Platt probabilities (`--probabilities`).
 
 mod common;
 
@@ -601,4 +602,88 @@ fn damaged_models_are_refused_by_score_eval_and_verify() {
 #[test]
 fn help_explains_every_option() {
     assert_help_explains_everything(&["score"]);
+}
+
+fn f(v: &serde_json::Value) -> f64 {
+    v.as_f64().unwrap_or_else(|| panic!("not a number: {v}"))
+}
+
+#[test]
+fn score_applies_the_threshold_and_prints_platt_probabilities() {
+    let t = tmp();
+    let (dir, model) = spam_model(t.path(), "d", "hinge");
+    let input = t.path().join("d.tsv");
+    // Not calibrated: no probabilities for a hinge model.
+    tamis(["score", s(&model), s(&input), "--probabilities"])
+        .fails()
+        .stderr_has("tamis calibrate");
+    assert!(model_meta(&model).get("calibration").is_none());
+    let before = score(&model, &[s(&input)]).stdout;
+    let (o, _) = calibrate_json(&model, &dir, &["--min-precision", "0.99"]);
+    o.ok().stderr_has("wrote");
+    let meta = model_meta(&model);
+    let th = f(&meta["calibration"]["thresholds"][0]);
+    let (a, b) = (
+        f(&meta["calibration"]["platt"][0]["a"]),
+        f(&meta["calibration"]["platt"][0]["b"]),
+    );
+    assert!(a < 0.0, "higher scores mean spam: A = {a}");
+    // Scores do not change; labels follow the stored threshold.
+    let after = parse_scores(&score(&model, &[s(&input)]).stdout);
+    let plain = parse_scores(&before);
+    assert_eq!(after.len(), plain.len());
+    let mut flipped = 0;
+    for (x, y) in after.iter().zip(&plain) {
+        let (
+            Scored::Row {
+                label,
+                score,
+                probability,
+                ..
+            },
+            Scored::Row {
+                score: s0,
+                label: l0,
+                ..
+            },
+        ) = (x, y)
+        else {
+            panic!("{x:?}")
+        };
+        assert_eq!(score, s0);
+        assert!(
+            probability.is_none(),
+            "hinge: no probability without the flag"
+        );
+        if (score - th).abs() > 1e-5 {
+            assert_eq!(label == "spam", *score >= th, "{score} vs {th}");
+        }
+        flipped += (label != l0) as u32;
+    }
+    assert!(flipped > 0, "the threshold should move some decisions");
+    // Platt probabilities 1/(1 + e^(A·s + B)) (Platt 1999) of the printed scores.
+    let o = score(&model, &[s(&input), "--probabilities"]);
+    for r in parse_scores(&o.stdout) {
+        let Scored::Row {
+            score, probability, ..
+        } = r
+        else {
+            panic!()
+        };
+        let want = 1.0 / (1.0 + (a * score + b).exp());
+        assert!((probability.unwrap() - want).abs() < 2e-5, "{score}");
+    }
+    // The JSON Lines output carries them too.
+    let o = score(
+        &model,
+        &[s(&input), "--probabilities", "--output-format", "jsonl"],
+    );
+    let first: serde_json::Value = serde_json::from_str(o.stdout.lines().next().unwrap()).unwrap();
+    assert!(first["probability"].is_number());
+    // eval now reports probability figures, and calibration improved them.
+    let m = eval_json(&model, &[s(&dir)], &[]);
+    assert!(f(&m["brier"]) < 0.25 && f(&m["log_loss"]) < std::f64::consts::LN_2);
+    let (_, rep) = calibrate_json(&model, &dir, &["--out", s(&t.path().join("x.tmm"))]);
+    let m0 = &rep["models"][0];
+    assert!(f(&m0["after"]["brier"]) <= f(&m0["before"]["brier"]) + 1e-9);
 }

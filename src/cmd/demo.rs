@@ -115,6 +115,7 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
         split: super::eval::Which::Validation,
         fields: Default::default(),
         json: false,
+        report: None,
         threads: Some(opts.threads),
     })?;
     let examples = a.dir.join("examples.txt");

@@ -5,8 +5,8 @@ use std::path::{Path, PathBuf};
 use std::process::ExitCode;
 
 use anyhow::{bail, Context};
-use tamis::dataset::{self, Manifest, Split};
-use tamis::eval::{self, Accumulator, Metrics, Weights};
+use tamis::dataset::Split;
+use tamis::eval::{self, Metrics, ScoredRows};
 use tamis::input::LabelMode;
 use tamis::model::Model;
 use tamis::score::{self, Outcome};
@@ -43,89 +43,43 @@ pub struct Args {
     pub fields: super::score::ModelFields,
 
     /// Print JSON (keys include rows, accuracy, macro_f1, per_class, confusion,
-    /// hinge_loss, log_loss).
+    /// undecided, hinge_loss, log_loss, brier, expected_calibration_error,
+    /// roc_auc, average_precision, precision, recall, false_positive_rate,
+    /// thresholds).
     #[arg(long)]
     pub json: bool,
+
+    /// Also write an HTML page of plots (ROC and precision–recall curves, score
+    /// histograms, confusion grid, reliability diagram, training curves) to FILE.
+    #[arg(long, value_name = "FILE")]
+    pub report: Option<PathBuf>,
 
     /// Threads [default: all cores].
     #[arg(long, short = 'j', value_name = "N")]
     pub threads: Option<usize>,
 }
 
-fn on_dataset(model: &Model, dir: &Path, which: Which) -> anyhow::Result<(Metrics, Vec<String>)> {
-    let m = Manifest::load(dir)?;
-    if m.features != model.meta.features {
-        bail!(
-            "{}: the dataset's tokenizing and hashing settings differ from the model's; score raw text instead, or ingest with the model's settings",
-            dir.display()
-        );
-    }
-    let names: Vec<String> = m.labels.iter().map(|l| l.name.clone()).collect();
-    if names.len() < model.meta.labels.len()
-        || names[..model.meta.labels.len()] != model.meta.labels[..]
-    {
-        bail!(
-            "{}: the dataset's labels do not start with the model's labels {:?}",
-            dir.display(),
-            model.meta.labels
-        );
-    }
-    let positive = match &model.meta.positive {
-        Some(p) => Some(names.iter().position(|n| n == p).expect("checked above") as u32),
-        None => {
-            if names.len() > model.meta.labels.len() {
-                bail!(
-                    "{}: the dataset has labels the model does not know: {:?}",
-                    dir.display(),
-                    &names[model.meta.labels.len()..]
-                );
-            }
-            None
-        }
-    };
+/// The scored rows of a dataset split (checked against the model).
+pub fn scored_split(model: &Model, dir: &Path, which: Which) -> anyhow::Result<ScoredRows> {
     let splits: &[Split] = match which {
         Which::Validation => &[Split::Validation],
         Which::Train => &[Split::Train],
         Which::All => &[Split::Train, Split::Validation],
     };
-    let mut shards = Vec::new();
-    for s in splits {
-        for e in m.shards_of(*s) {
-            let sh = dataset::open_shard(dir, e)?;
-            sh.verify(Some(names.len() as u32))?;
-            shards.push(sh);
-        }
-    }
+    let (shards, positive) = eval::open_for(model, dir, splits)?;
     if shards.is_empty() {
         bail!(
             "{}: the dataset has no rows in the chosen split",
             dir.display()
         );
     }
-    let ev = eval::evaluate(
-        &shards,
-        Weights {
-            weights: &model.weights,
-            biases: &model.biases,
-            dim: model.dim(),
-            idf: model.idf.as_deref(),
-        },
-        positive,
-        names.len(),
-        model.meta.loss,
-    );
-    let labels = score::decision_labels(model);
-    Ok((
-        eval::metrics(&ev, &labels, model.meta.loss, positive.is_some(), 0),
-        labels,
-    ))
+    Ok(eval::score_shards(&shards, model, positive))
 }
 
-fn on_inputs(model: &Model, a: &Args, threads: usize) -> anyhow::Result<(Metrics, Vec<String>)> {
+fn on_inputs(model: &Model, a: &Args, threads: usize) -> anyhow::Result<(ScoredRows, u64)> {
     let spec = a.fields.spec(model, 1 << 20);
     let labels = score::decision_labels(model);
-    let k = if model.is_binary() { 2 } else { labels.len() };
-    let mut acc = Accumulator::new(k, model.meta.loss);
+    let mut rows = ScoredRows::new(model.models());
     let mut skipped = 0u64;
     let mut unknown = 0u64;
     score::score_inputs(
@@ -144,7 +98,7 @@ fn on_inputs(model: &Model, a: &Args, threads: usize) -> anyhow::Result<(Metrics
                             None => labels.iter().position(|l| *l == t),
                         };
                         match class {
-                            Some(c) => acc.add(&scores, c),
+                            Some(c) => rows.push(&scores, c as u32),
                             None => unknown += 1,
                         }
                     }
@@ -160,20 +114,14 @@ fn on_inputs(model: &Model, a: &Args, threads: usize) -> anyhow::Result<(Metrics
             thousands(unknown)
         );
     }
-    let ev = acc.finish();
-    if ev.rows == 0 {
+    if rows.rows() == 0 {
         bail!("no labelled record could be evaluated");
     }
-    Ok((
-        eval::metrics(
-            &ev,
-            &labels,
-            model.meta.loss,
-            model.is_binary(),
-            skipped + unknown,
-        ),
-        labels,
-    ))
+    Ok((rows, skipped + unknown))
+}
+
+fn opt(x: Option<f64>) -> String {
+    x.map_or_else(|| "-".into(), |v| format!("{v:.4}"))
 }
 
 /// Print the human-readable report.
@@ -190,6 +138,23 @@ pub fn print(m: &Metrics, out: &mut impl Write) -> std::io::Result<()> {
     if let Some(l) = m.log_loss {
         writeln!(out, "log loss   {l:>12.4}")?;
     }
+    writeln!(out, "ROC AUC    {:>12}", opt(m.roc_auc))?;
+    writeln!(out, "avg prec.  {:>12}", opt(m.average_precision))?;
+    if m.brier.is_some() {
+        writeln!(out, "Brier      {:>12}", opt(m.brier))?;
+        writeln!(out, "ECE        {:>12}", opt(m.expected_calibration_error))?;
+    }
+    let at = match &m.thresholds {
+        Some(t) if t.len() == 1 => format!("at the stored threshold {:.6}", t[0]),
+        Some(_) => "at the stored per-class thresholds (means over classes)".into(),
+        None if m.per_class.len() == 2 && m.confusion_labels.len() == 2 => "at margin 0".into(),
+        None => "at the highest score (means over classes)".into(),
+    };
+    writeln!(
+        out,
+        "precision {:.4}  recall {:.4}  false-positive rate {:.4}  {at}",
+        m.precision, m.recall, m.false_positive_rate
+    )?;
     writeln!(out)?;
     writeln!(
         out,
@@ -228,6 +193,21 @@ pub fn print(m: &Metrics, out: &mut impl Write) -> std::io::Result<()> {
         }
         writeln!(out)?;
     }
+    let undecided: u64 = m.undecided.iter().sum();
+    if undecided > 0 {
+        writeln!(
+            out,
+            "{} rows cleared no class's threshold ({}); per true class: {}",
+            thousands(undecided),
+            tamis::model::UNDECIDED,
+            m.confusion_labels
+                .iter()
+                .zip(&m.undecided)
+                .map(|(l, n)| format!("{l} {n}"))
+                .collect::<Vec<_>>()
+                .join(", ")
+        )?;
+    }
     Ok(())
 }
 
@@ -236,11 +216,37 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
     let model = Model::load(&a.model)
         .with_context(|| format!("cannot load model {}", a.model.display()))?;
     let threads = a.threads.unwrap_or_else(super::default_threads);
-    let (m, _) = if a.data.len() == 1 && Path::new(&a.data[0]).is_dir() {
-        on_dataset(&model, Path::new(&a.data[0]), a.split)?
+    let (rows, skipped) = if a.data.len() == 1 && Path::new(&a.data[0]).is_dir() {
+        (scored_split(&model, Path::new(&a.data[0]), a.split)?, 0)
     } else {
         on_inputs(&model, &a, threads)?
     };
+    let labels = score::decision_labels(&model);
+    let m = eval::metrics(&model, &rows, &labels, skipped);
+    if let Some(path) = &a.report {
+        let what = if a.data.len() == 1 && Path::new(&a.data[0]).is_dir() {
+            let split = match a.split {
+                Which::Validation => "validation",
+                Which::Train => "train",
+                Which::All => "all",
+            };
+            format!("{} ({split} split)", a.data[0])
+        } else {
+            a.data.join(", ")
+        };
+        let page = tamis::report::html(&tamis::report::ReportInput {
+            model: &model,
+            rows: &rows,
+            metrics: &m,
+            labels: &labels,
+            model_labels: &model.meta.model_labels,
+            what: &what,
+            model_name: &a.model.display().to_string(),
+        })?;
+        tamis::report::write(path, &page)
+            .with_context(|| format!("cannot write the report {}", path.display()))?;
+        eprintln!("wrote {}", path.display());
+    }
     let mut out = std::io::stdout().lock();
     if a.json {
         serde_json::to_writer_pretty(&mut out, &m)?;

@@ -9,6 +9,7 @@ macro_rules! outln {
     }};
 }
 
+pub mod calibrate;
 pub mod demo;
 pub mod eval;
 pub mod explain;
@@ -55,6 +56,9 @@ enum Command {
     Inspect(inspect::Args),
     /// Show how each word and feature of a text adds to its score.
     Explain(explain::Args),
+    /// Choose score thresholds for a target (false-positive rate, precision or
+    /// recall) and fit Platt scaling on a dataset's validation split; store them in the model.
+    Calibrate(Box<calibrate::Args>),
     /// Summarise a dataset: rows, labels, nonzeros, bucket fill, shards.
     Stats(stats::Args),
     /// Recompute every checksum of a dataset or a tamis file and report damage.
@@ -69,6 +73,7 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::Ingest(a) => ingest::run(*a),
         Command::Score(a) => score::run(*a),
         Command::Eval(a) => eval::run(*a),
+        Command::Calibrate(a) => calibrate::run(*a),
         Command::Stats(a) => stats::run(a),
         Command::Inspect(a) => inspect::run(a),
         Command::Explain(a) => explain::run(a),

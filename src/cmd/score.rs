@@ -4,7 +4,7 @@ use std::io::{BufWriter, Write};
 use std::path::PathBuf;
 use std::process::ExitCode;
 
-use anyhow::Context;
+use anyhow::{bail, Context};
 use tamis::input::{Format, InputSpec, LabelMode};
 use tamis::model::Model;
 use tamis::score::{self, Outcome};
@@ -32,6 +32,12 @@ pub struct Args {
 
     #[command(flatten)]
     pub fields: ModelFields,
+
+    /// Add the probability column: Platt scaling stored by `tamis calibrate`
+    /// (logistic models always print σ(score)). An error for an uncalibrated
+    /// hinge model.
+    #[arg(long)]
+    pub probabilities: bool,
 
     /// Output format.
     #[arg(long, value_enum, default_value_t = OutputFormat::Tsv)]
@@ -117,6 +123,14 @@ fn json_str(s: &str) -> String {
 pub fn run(a: Args) -> anyhow::Result<ExitCode> {
     let model = Model::load(&a.model)
         .with_context(|| format!("cannot load model {}", a.model.display()))?;
+    if a.probabilities && !model.has_probabilities() {
+        bail!(
+            "{}: a {} model gives no probabilities until `tamis calibrate` fits Platt scaling on a validation split",
+            a.model.display(),
+            model.meta.loss.name()
+        );
+    }
+    let show_p = a.probabilities || model.meta.loss == tamis::solver::Loss::Logistic;
     let spec = a.fields.spec(&model, a.max_line_bytes);
     let inputs = if a.inputs.is_empty() {
         vec!["-".to_string()]
@@ -162,7 +176,7 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
                         OutputFormat::Tsv,
                     ) => {
                         scored += 1;
-                        match probability {
+                        match probability.filter(|_| show_p) {
                             Some(p) => writeln!(out, "{place}\t{label}\t{score:.6}\t{p:.6}"),
                             None => writeln!(out, "{place}\t{label}\t{score:.6}"),
                         }
@@ -177,7 +191,7 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
                         OutputFormat::Jsonl,
                     ) => {
                         scored += 1;
-                        match probability {
+                        match probability.filter(|_| show_p) {
                         Some(p) => writeln!(out, "{{\"where\":{},\"label\":{},\"score\":{score:.6},\"probability\":{p:.6}}}", json_str(&place), json_str(label)),
                         None => writeln!(out, "{{\"where\":{},\"label\":{},\"score\":{score:.6}}}", json_str(&place), json_str(label)),
                     }

@@ -1,7 +1,19 @@
 //! Evaluation: metrics of fixed weights on shards or on scored raw text.
+//!
+//! [`evaluate`] streams over shards (the per-epoch validation of training);
+//! [`score_shards`] keeps every row's scores ([`ScoredRows`]) for the ranking
+//! metrics of [`rank`], calibration and the report; [`metrics`] computes what
+//! `tamis eval` prints from them.
+
+pub mod rank;
+
+use std::path::Path;
 
 use rayon::prelude::*;
 
+use crate::dataset::{self, Manifest, Split};
+use crate::error::{Error, Result};
+use crate::model::{Decision, Model};
 use crate::shard::Shard;
 use crate::solver::Loss;
 
@@ -33,6 +45,14 @@ pub struct Weights<'a> {
     pub idf: Option<&'a [f32]>,
 }
 
+/// A shard cut into pieces of 4096 rows `(shard, first row, end)`, the unit of
+/// parallel work of evaluation.
+fn pieces(s: &Shard) -> impl Iterator<Item = (&Shard, usize, usize)> {
+    let n = s.rows();
+    let step = 4096;
+    (0..n.div_ceil(step)).map(move |c| (s, c * step, ((c + 1) * step).min(n)))
+}
+
 /// Evaluate weights on shards: binary if `positive` is set.
 pub fn evaluate(
     shards: &[Shard],
@@ -50,11 +70,7 @@ pub fn evaluate(
     let k = if positive.is_some() { 2 } else { classes };
     let parts: Vec<(f64, f64, Vec<Vec<u64>>)> = shards
         .par_iter()
-        .flat_map_iter(|s| {
-            let n = s.rows();
-            let step = 4096;
-            (0..n.div_ceil(step)).map(move |c| (s, c * step, ((c + 1) * step).min(n)))
-        })
+        .flat_map_iter(pieces)
         .map(|(s, a, b)| {
             let mut conf = vec![vec![0u64; k]; k];
             let mut l = 0.0;
@@ -115,22 +131,7 @@ pub fn evaluate(
 
 /// Per-class precision, recall and F1 from a confusion matrix.
 pub fn per_class(conf: &[Vec<u64>]) -> Vec<(f64, f64, f64)> {
-    let k = conf.len();
-    (0..k)
-        .map(|c| {
-            let tp = conf[c][c] as f64;
-            let predicted: f64 = (0..k).map(|t| conf[t][c] as f64).sum();
-            let actual: f64 = conf[c].iter().map(|&x| x as f64).sum();
-            let p = if predicted > 0.0 { tp / predicted } else { 0.0 };
-            let r = if actual > 0.0 { tp / actual } else { 0.0 };
-            let f = if p + r > 0.0 {
-                2.0 * p * r / (p + r)
-            } else {
-                0.0
-            };
-            (p, r, f)
-        })
-        .collect()
+    per_class_with_undecided(conf, &vec![0; conf.len()])
 }
 
 /// Precision, recall and F1 of one class.
@@ -149,6 +150,15 @@ pub struct ClassMetrics {
 }
 
 /// The metrics `tamis eval` reports.
+///
+/// Decisions (confusion, accuracy, precision, recall, false-positive rate)
+/// follow [`Model::decide`]: the stored thresholds when the model was
+/// calibrated with a target, else margin 0 (binary) or the highest score.
+/// For one-vs-rest models the threshold-free figures (ROC AUC, average
+/// precision, log loss, Brier score, calibration error) are the means over the
+/// classes of each class's model against the rest (classes without both
+/// positive and negative rows left out), and precision, recall and
+/// false-positive rate are the means of the per-class figures.
 #[derive(Debug, Clone, PartialEq, serde::Serialize)]
 pub struct Metrics {
     /// Rows evaluated.
@@ -163,23 +173,226 @@ pub struct Metrics {
     pub per_class: Vec<ClassMetrics>,
     /// Class names of the confusion matrix rows (truth) and columns (prediction).
     pub confusion_labels: Vec<String>,
-    /// Confusion counts `[truth][prediction]`.
+    /// Confusion counts `[truth][prediction]` of the decided rows.
     pub confusion: Vec<Vec<u64>>,
+    /// Rows of each true class that no class claimed (one-vs-rest with
+    /// thresholds; zeros otherwise).
+    pub undecided: Vec<u64>,
     /// Mean hinge loss of the margins (summed over models for one-vs-rest).
     pub hinge_loss: f64,
-    /// Mean log loss in nats, for a binary logistic model; `null` otherwise.
+    /// Mean log loss in nats of the model's probabilities; `null` for a model
+    /// without probabilities (hinge losses, not calibrated).
     pub log_loss: Option<f64>,
+    /// Mean squared error of the probabilities; `null` without probabilities.
+    pub brier: Option<f64>,
+    /// Expected calibration error (10 equal-width bins); `null` without probabilities.
+    pub expected_calibration_error: Option<f64>,
+    /// Area under the ROC curve; `null` when a class is missing.
+    pub roc_auc: Option<f64>,
+    /// Average precision (area under the precision–recall step curve).
+    pub average_precision: Option<f64>,
+    /// Precision of the positive class at the model's decisions.
+    pub precision: f64,
+    /// Recall of the positive class at the model's decisions.
+    pub recall: f64,
+    /// False-positive rate of the positive class at the model's decisions.
+    pub false_positive_rate: f64,
+    /// The stored thresholds, one per model; `null` when none is stored.
+    pub thresholds: Option<Vec<f64>>,
 }
 
-/// Metrics from an [`Evaluation`]; `labels` name the confusion matrix's classes.
-pub fn metrics(
-    ev: &Evaluation,
-    labels: &[String],
-    loss: Loss,
-    binary: bool,
-    skipped: u64,
-) -> Metrics {
-    let pc = per_class(&ev.confusion);
+/// Scores of every model for every row of a split, with the truth: all that
+/// the ranking metrics, calibration and the report need, 8 bytes per row and
+/// model plus 4 per row. Feature rows are not kept.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct ScoredRows {
+    /// Models (1 binary, else one per class).
+    pub models: usize,
+    /// Row-major, `rows × models`.
+    pub scores: Vec<f64>,
+    /// The true class of each row: binary 1 positive, 0 negative; one-vs-rest
+    /// the class's model.
+    pub truth: Vec<u32>,
+}
+
+impl ScoredRows {
+    /// Empty, for `models` models.
+    pub fn new(models: usize) -> Self {
+        ScoredRows {
+            models,
+            scores: Vec::new(),
+            truth: Vec::new(),
+        }
+    }
+
+    /// Rows.
+    pub fn rows(&self) -> usize {
+        self.truth.len()
+    }
+
+    /// Add a row.
+    pub fn push(&mut self, scores: &[f64], truth: u32) {
+        debug_assert_eq!(scores.len(), self.models);
+        self.scores.extend_from_slice(scores);
+        self.truth.push(truth);
+    }
+
+    /// The scores of row `i`.
+    pub fn row(&self, i: usize) -> &[f64] {
+        &self.scores[i * self.models..(i + 1) * self.models]
+    }
+
+    /// Model `m`'s scores and whether each row is its class (binary: the
+    /// positive class), one-vs-rest.
+    pub fn one_vs_rest(&self, m: usize) -> (Vec<f64>, Vec<bool>) {
+        let binary = self.models == 1;
+        let s = self
+            .scores
+            .iter()
+            .skip(m)
+            .step_by(self.models)
+            .copied()
+            .collect();
+        let y = self
+            .truth
+            .iter()
+            .map(|&t| if binary { t == 1 } else { t as usize == m })
+            .collect();
+        (s, y)
+    }
+}
+
+/// Score every row of `shards` with `model`: binary if `positive` (the
+/// positive class id) is set. Order: shards in the order given, rows in order.
+pub fn score_shards(shards: &[Shard], model: &Model, positive: Option<u32>) -> ScoredRows {
+    let parts: Vec<ScoredRows> = shards
+        .par_iter()
+        .flat_map_iter(pieces)
+        .map(|(s, a, b)| {
+            let mut part = ScoredRows::new(model.models());
+            let mut out = Vec::new();
+            for i in a..b {
+                let x = s.row(i);
+                model.scores(&x, &mut out);
+                let t = match positive {
+                    Some(p) => (x.label == p) as u32,
+                    None => x.label,
+                };
+                part.push(&out, t);
+            }
+            part
+        })
+        .collect();
+    let mut all = ScoredRows::new(model.models());
+    all.scores
+        .reserve(parts.iter().map(|p| p.scores.len()).sum());
+    all.truth.reserve(parts.iter().map(|p| p.truth.len()).sum());
+    for p in parts {
+        all.scores.extend_from_slice(&p.scores);
+        all.truth.extend_from_slice(&p.truth);
+    }
+    all
+}
+
+/// Open the shards of `splits` of the dataset in `dir` for evaluating `model`,
+/// checking that the dataset was hashed with the model's settings and that its
+/// labels start with the model's. Returns the shards (fully verified) and the
+/// positive class id of a binary model.
+pub fn open_for(model: &Model, dir: &Path, splits: &[Split]) -> Result<(Vec<Shard>, Option<u32>)> {
+    let m = Manifest::load(dir)?;
+    let mismatch = |what: String| Error::Mismatch {
+        path: dir.to_path_buf(),
+        what,
+    };
+    if m.features != model.meta.features {
+        return Err(mismatch(
+            "the dataset's tokenizing and hashing settings differ from the model's; score raw text instead, or ingest with the model's settings".into(),
+        ));
+    }
+    let names: Vec<String> = m.labels.iter().map(|l| l.name.clone()).collect();
+    if names.len() < model.meta.labels.len()
+        || names[..model.meta.labels.len()] != model.meta.labels[..]
+    {
+        return Err(mismatch(format!(
+            "the dataset's labels do not start with the model's labels {:?}",
+            model.meta.labels
+        )));
+    }
+    let positive = match &model.meta.positive {
+        Some(p) => names.iter().position(|n| n == p).map(|i| i as u32),
+        None => {
+            if names.len() > model.meta.labels.len() {
+                return Err(mismatch(format!(
+                    "the dataset has labels the model does not know: {:?}",
+                    &names[model.meta.labels.len()..]
+                )));
+            }
+            None
+        }
+    };
+    let mut shards = Vec::new();
+    for s in splits {
+        for e in m.shards_of(*s) {
+            let sh = dataset::open_shard(dir, e)?;
+            sh.verify(Some(names.len() as u32))?;
+            shards.push(sh);
+        }
+    }
+    Ok((shards, positive))
+}
+
+/// Probability figures of one model against the rest: log loss, Brier score,
+/// expected calibration error.
+fn probability_metrics(model: &Model, m: usize, s: &[f64], y: &[bool]) -> Option<(f64, f64, f64)> {
+    let logits: Vec<f64> = s
+        .iter()
+        .map(|&x| model.logit(m, x))
+        .collect::<Option<_>>()?;
+    let p: Vec<f64> = logits.iter().map(|&z| rank::sigmoid(z)).collect();
+    let ll = rank::mean_log_loss_of_logits(&logits, y)?;
+    Some((
+        ll,
+        rank::brier(&p, y)?,
+        rank::expected_calibration_error(&p, y)?,
+    ))
+}
+
+fn mean_of(v: impl Iterator<Item = Option<f64>>) -> Option<f64> {
+    let xs: Vec<f64> = v.flatten().collect();
+    (!xs.is_empty()).then(|| xs.iter().sum::<f64>() / xs.len() as f64)
+}
+
+/// The metrics of `model` on scored rows; `labels` name the decided classes
+/// ([`crate::score::decision_labels`]).
+pub fn metrics(model: &Model, rows: &ScoredRows, labels: &[String], skipped: u64) -> Metrics {
+    let k = labels.len();
+    let mut conf = vec![vec![0u64; k]; k];
+    let mut undecided = vec![0u64; k];
+    let mut hinge = 0.0;
+    for i in 0..rows.rows() {
+        let sc = rows.row(i);
+        let t = (rows.truth[i] as usize).min(k - 1);
+        match model.decide(sc) {
+            Decision::Class(c) => conf[t][c] += 1,
+            Decision::Undecided => undecided[t] += 1,
+        }
+        for (m, &x) in sc.iter().enumerate() {
+            let y = if rows.models == 1 {
+                if t == 1 {
+                    1.0
+                } else {
+                    -1.0
+                }
+            } else if t == m {
+                1.0
+            } else {
+                -1.0
+            };
+            hinge += Loss::Hinge.value(y * x);
+        }
+    }
+    let n = rows.rows() as u64;
+    let pc = per_class_with_undecided(&conf, &undecided);
     let per_class: Vec<ClassMetrics> = pc
         .iter()
         .enumerate()
@@ -188,77 +401,90 @@ pub fn metrics(
             precision: p,
             recall: r,
             f1: f,
-            support: ev.confusion[c].iter().sum(),
+            support: conf[c].iter().sum::<u64>() + undecided[c],
         })
         .collect();
+    // One-vs-rest figures per model.
+    let mut auc = Vec::new();
+    let mut ap = Vec::new();
+    let mut prob = Vec::new();
+    for m in 0..rows.models {
+        let (s, y) = rows.one_vs_rest(m);
+        let r = rank::Ranking::new(&s, &y);
+        let both = r.positives > 0 && r.negatives > 0;
+        auc.push(r.roc_auc());
+        ap.push(if both { r.average_precision() } else { None });
+        prob.push(if both || rows.models == 1 {
+            probability_metrics(model, m, &s, &y)
+        } else {
+            None
+        });
+    }
+    // Decision figures: binary the positive class; one-vs-rest the means.
+    let fpr_of = |c: usize| -> f64 {
+        let fp: u64 = (0..k).filter(|&t| t != c).map(|t| conf[t][c]).sum();
+        let neg: u64 = (0..k)
+            .filter(|&t| t != c)
+            .map(|t| conf[t].iter().sum::<u64>() + undecided[t])
+            .sum();
+        if neg > 0 {
+            fp as f64 / neg as f64
+        } else {
+            0.0
+        }
+    };
+    let (precision, recall, fpr) = if model.is_binary() {
+        (pc[1].0, pc[1].1, fpr_of(1))
+    } else {
+        let kf = k.max(1) as f64;
+        (
+            pc.iter().map(|x| x.0).sum::<f64>() / kf,
+            pc.iter().map(|x| x.1).sum::<f64>() / kf,
+            (0..k).map(fpr_of).sum::<f64>() / kf,
+        )
+    };
+    let correct: u64 = (0..k).map(|i| conf[i][i]).sum();
     Metrics {
-        rows: ev.rows,
+        rows: n,
         skipped,
-        accuracy: ev.accuracy,
+        accuracy: correct as f64 / n.max(1) as f64,
         macro_f1: per_class.iter().map(|c| c.f1).sum::<f64>() / per_class.len().max(1) as f64,
         per_class,
         confusion_labels: labels.to_vec(),
-        confusion: ev.confusion.clone(),
-        hinge_loss: ev.hinge,
-        log_loss: (binary && loss == Loss::Logistic).then_some(ev.loss),
+        confusion: conf,
+        undecided,
+        hinge_loss: hinge / n.max(1) as f64,
+        log_loss: mean_of(prob.iter().map(|p| p.map(|x| x.0))),
+        brier: mean_of(prob.iter().map(|p| p.map(|x| x.1))),
+        expected_calibration_error: mean_of(prob.iter().map(|p| p.map(|x| x.2))),
+        roc_auc: mean_of(auc.into_iter()),
+        average_precision: mean_of(ap.into_iter()),
+        precision,
+        recall,
+        false_positive_rate: fpr,
+        thresholds: model.thresholds().map(<[f64]>::to_vec),
     }
 }
 
-/// Gathers an [`Evaluation`] from scores one row at a time (raw-text evaluation).
-#[derive(Debug, Clone)]
-pub struct Accumulator {
-    conf: Vec<Vec<u64>>,
-    loss_sum: f64,
-    hinge_sum: f64,
-    loss: Loss,
-}
-
-impl Accumulator {
-    /// For `k` classes (2 for binary) and the model's loss.
-    pub fn new(k: usize, loss: Loss) -> Self {
-        Accumulator {
-            conf: vec![vec![0; k]; k],
-            loss_sum: 0.0,
-            hinge_sum: 0.0,
-            loss,
-        }
-    }
-
-    /// Add a row: `scores` of every model, `truth` the true class (binary: 1
-    /// positive, 0 negative).
-    pub fn add(&mut self, scores: &[f64], truth: usize) {
-        if scores.len() == 1 {
-            let y = if truth == 1 { 1.0 } else { -1.0 };
-            self.loss_sum += self.loss.value(y * scores[0]);
-            self.hinge_sum += Loss::Hinge.value(y * scores[0]);
-            self.conf[truth][(scores[0] > 0.0) as usize] += 1;
-        } else {
-            let mut best = 0;
-            for (c, &s) in scores.iter().enumerate() {
-                let y = if c == truth { 1.0 } else { -1.0 };
-                self.loss_sum += self.loss.value(y * s);
-                self.hinge_sum += Loss::Hinge.value(y * s);
-                if s > scores[best] {
-                    best = c;
-                }
-            }
-            self.conf[truth][best] += 1;
-        }
-    }
-
-    /// The evaluation so far.
-    pub fn finish(&self) -> Evaluation {
-        let rows: u64 = self.conf.iter().flatten().sum();
-        let k = self.conf.len();
-        let correct: u64 = (0..k).map(|i| self.conf[i][i]).sum();
-        Evaluation {
-            rows,
-            loss: self.loss_sum / rows.max(1) as f64,
-            hinge: self.hinge_sum / rows.max(1) as f64,
-            accuracy: correct as f64 / rows.max(1) as f64,
-            confusion: self.conf.clone(),
-        }
-    }
+/// Per-class precision, recall and F1 when some rows of each true class were
+/// left undecided (they count as misses for recall).
+fn per_class_with_undecided(conf: &[Vec<u64>], undecided: &[u64]) -> Vec<(f64, f64, f64)> {
+    let k = conf.len();
+    (0..k)
+        .map(|c| {
+            let tp = conf[c][c] as f64;
+            let predicted: f64 = (0..k).map(|t| conf[t][c] as f64).sum();
+            let actual: f64 = conf[c].iter().map(|&x| x as f64).sum::<f64>() + undecided[c] as f64;
+            let p = if predicted > 0.0 { tp / predicted } else { 0.0 };
+            let r = if actual > 0.0 { tp / actual } else { 0.0 };
+            let f = if p + r > 0.0 {
+                2.0 * p * r / (p + r)
+            } else {
+                0.0
+            };
+            (p, r, f)
+        })
+        .collect()
 }
 
 #[cfg(test)]
@@ -268,58 +494,37 @@ mod tests {
     // A hand-checkable example: 3 classes, truth rows, predicted columns.
     // Class 0: tp 5, predicted 5+1=6, actual 5+2=7 → P 5/6, R 5/7.
     #[test]
-    fn per_class_and_macro_f1_by_hand() {
+    fn per_class_by_hand() {
         let conf = vec![vec![5, 2, 0], vec![1, 3, 1], vec![0, 0, 4]];
-        let ev = Evaluation {
-            rows: 16,
-            loss: 0.0,
-            hinge: 0.0,
-            accuracy: 12.0 / 16.0,
-            confusion: conf,
-        };
-        let m = metrics(
-            &ev,
-            &["a".into(), "b".into(), "c".into()],
-            Loss::Hinge,
-            false,
-            0,
-        );
         let f = |p: f64, r: f64| 2.0 * p * r / (p + r);
         let want = [
             (5.0 / 6.0, 5.0 / 7.0),
             (3.0 / 5.0, 3.0 / 5.0),
             (4.0 / 5.0, 1.0),
         ];
+        let got = per_class(&conf);
         for (c, (p, r)) in want.iter().enumerate() {
-            assert!((m.per_class[c].precision - p).abs() < 1e-12);
-            assert!((m.per_class[c].recall - r).abs() < 1e-12);
-            assert!((m.per_class[c].f1 - f(*p, *r)).abs() < 1e-12);
+            assert!((got[c].0 - p).abs() < 1e-12);
+            assert!((got[c].1 - r).abs() < 1e-12);
+            assert!((got[c].2 - f(*p, *r)).abs() < 1e-12);
         }
-        let macro_f1 = want.iter().map(|(p, r)| f(*p, *r)).sum::<f64>() / 3.0;
-        assert!((m.macro_f1 - macro_f1).abs() < 1e-12);
-        assert_eq!(m.per_class[1].support, 5);
-        assert!(m.log_loss.is_none());
+        // Two undecided rows of class 2: its recall drops to 4/6.
+        let got = per_class_with_undecided(&conf, &[0, 0, 2]);
+        assert!((got[2].1 - 4.0 / 6.0).abs() < 1e-12);
+        assert!((got[2].0 - 4.0 / 5.0).abs() < 1e-12);
     }
 
     #[test]
-    fn accumulator_binary_and_multiclass() {
-        let mut a = Accumulator::new(2, Loss::Logistic);
-        a.add(&[2.0], 1);
-        a.add(&[-1.0], 1);
-        a.add(&[-3.0], 0);
-        let e = a.finish();
-        assert_eq!(e.confusion, vec![vec![1, 0], vec![1, 1]]);
-        let want =
-            (Loss::Logistic.value(2.0) + Loss::Logistic.value(-1.0) + Loss::Logistic.value(3.0))
-                / 3.0;
-        assert!((e.loss - want).abs() < 1e-12);
-        assert!((e.hinge - (0.0 + 2.0 + 0.0) / 3.0).abs() < 1e-12);
-        let mut a = Accumulator::new(3, Loss::Hinge);
-        a.add(&[0.5, 2.0, -1.0], 1);
-        a.add(&[0.5, 2.0, -1.0], 0);
-        let e = a.finish();
-        assert_eq!(e.confusion[1][1], 1);
-        assert_eq!(e.confusion[0][1], 1);
-        assert_eq!(e.accuracy, 0.5);
+    fn scored_rows_one_vs_rest() {
+        let mut r = ScoredRows::new(3);
+        r.push(&[0.5, 2.0, -1.0], 1);
+        r.push(&[0.1, 0.2, 0.3], 0);
+        assert_eq!(r.rows(), 2);
+        assert_eq!(r.row(1), &[0.1, 0.2, 0.3]);
+        assert_eq!(r.one_vs_rest(1), (vec![2.0, 0.2], vec![true, false]));
+        let mut b = ScoredRows::new(1);
+        b.push(&[1.0], 1);
+        b.push(&[-1.0], 0);
+        assert_eq!(b.one_vs_rest(0), (vec![1.0, -1.0], vec![true, false]));
     }
 }

@@ -22,6 +22,7 @@ use std::path::Path;
 
 use serde::{Deserialize, Serialize};
 
+use crate::calibrate::Calibration;
 use crate::container::{self, cast_section, Container, ContainerWriter, Kind};
 use crate::dataset::sketch::TokenSketch;
 use crate::error::{Error, Result};
@@ -135,7 +136,24 @@ pub struct ModelMeta {
     /// (0 in models written before this was recorded).
     #[serde(default)]
     pub steps: u64,
+    /// Thresholds and Platt scaling set by `tamis calibrate`; absent in models
+    /// that were never calibrated (and in files written before it existed).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub calibration: Option<Calibration>,
 }
+
+/// What the model decides for one record.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Decision {
+    /// A class: for a binary model 1 positive, 0 negative; else the class's model.
+    Class(usize),
+    /// One-vs-rest with thresholds: no class cleared its threshold.
+    Undecided,
+}
+
+/// How an undecided record is labelled in output (`?` keeps it apart from
+/// label names, as `!` does for skipped records).
+pub const UNDECIDED: &str = "?undecided";
 
 /// A loaded model.
 #[derive(Debug, Clone, PartialEq)]
@@ -186,6 +204,68 @@ impl Model {
         )
     }
 
+    /// The stored thresholds, one per model, if the model was calibrated with a target.
+    pub fn thresholds(&self) -> Option<&[f64]> {
+        self.meta
+            .calibration
+            .as_ref()
+            .and_then(|c| c.thresholds.as_deref())
+    }
+
+    /// The decision for the scores of every model. Binary: positive when the
+    /// score is `≥` the stored threshold (`> 0` without one). One-vs-rest
+    /// without thresholds: the highest score. With thresholds: the highest
+    /// score among the classes whose score is `≥` their threshold, or
+    /// [`Decision::Undecided`] when none is.
+    pub fn decide(&self, scores: &[f64]) -> Decision {
+        let t = self.thresholds();
+        if self.is_binary() {
+            let pos = match t {
+                Some(t) => scores[0] >= t[0],
+                None => scores[0] > 0.0,
+            };
+            return Decision::Class(pos as usize);
+        }
+        let mut best: Option<usize> = None;
+        for (c, &s) in scores.iter().enumerate() {
+            if t.is_some_and(|t| s < t[c]) {
+                continue;
+            }
+            if best.is_none_or(|b| s > scores[b]) {
+                best = Some(c);
+            }
+        }
+        best.map_or(Decision::Undecided, Decision::Class)
+    }
+
+    /// Whether the model gives probabilities: calibrated with Platt scaling,
+    /// or trained with the logistic loss.
+    pub fn has_probabilities(&self) -> bool {
+        self.platt().is_some() || self.meta.loss == Loss::Logistic
+    }
+
+    fn platt(&self) -> Option<&[crate::calibrate::Platt]> {
+        self.meta
+            .calibration
+            .as_ref()
+            .and_then(|c| c.platt.as_deref())
+    }
+
+    /// The log-odds that model `m`'s class is right at score `s`: `−(A·s + B)`
+    /// with stored Platt scaling, else `s` for a logistic model, else `None`.
+    pub fn logit(&self, m: usize, s: f64) -> Option<f64> {
+        match self.platt() {
+            Some(p) => Some(-(p[m].a * s + p[m].b)),
+            None => (self.meta.loss == Loss::Logistic).then_some(s),
+        }
+    }
+
+    /// The probability that model `m`'s class is right at score `s`,
+    /// `σ(`[`Model::logit`]`)`.
+    pub fn probability(&self, m: usize, s: f64) -> Option<f64> {
+        self.logit(m, s).map(crate::eval::rank::sigmoid)
+    }
+
     /// Check that sections and metadata agree.
     fn check(&self, path: &Path) -> Result<()> {
         let bad = |what: String| Error::Corrupt {
@@ -223,6 +303,23 @@ impl Model {
             .any(|v| !v.is_finite())
         {
             return Err(bad("weights are not finite".into()));
+        }
+        if let Some(c) = &self.meta.calibration {
+            let n = c.thresholds.as_ref().map_or(m, |t| t.len());
+            let k = c.platt.as_ref().map_or(m, |p| p.len());
+            if n != m || k != m {
+                return Err(bad(format!(
+                    "calibration holds {n} thresholds and {k} Platt pairs for {m} models"
+                )));
+            }
+            let finite = c.thresholds.iter().flatten().all(|t| t.is_finite())
+                && c.platt
+                    .iter()
+                    .flatten()
+                    .all(|p| p.a.is_finite() && p.b.is_finite());
+            if !finite {
+                return Err(bad("calibration values are not finite".into()));
+            }
         }
         Ok(())
     }

@@ -693,3 +693,62 @@ pub fn flip_in_section(path: &Path, id: u32) {
     bytes[off + len / 2] ^= 0x10;
     std::fs::write(path, bytes).unwrap();
 }
+
+// ------------------------------------------------------------- calibration
+// Helpers for the tests of `calibrate`, `score` and `eval` on calibrated models.
+
+/// `tamis calibrate MODEL DIR EXTRA... --json`: the outcome and the parsed report.
+pub fn calibrate_json(model: &Path, dir: &Path, extra: &[&str]) -> (Out, serde_json::Value) {
+    let mut args: Vec<String> = vec!["calibrate".into(), s(model).into(), s(dir).into()];
+    args.extend(extra.iter().map(|d| d.to_string()));
+    args.push("--json".into());
+    let o = tamis(&args);
+    let v = serde_json::from_str(&o.stdout).unwrap_or(serde_json::Value::Null);
+    (o, v)
+}
+
+/// The scores of every model for each row of `split` of the dataset in `dir`,
+/// with the row's label, computed with the library's model.
+pub fn split_scores(model: &Path, dir: &Path, split: Split) -> Vec<(Vec<f64>, String)> {
+    let m = tamis::model::Model::load(model).expect("model loads");
+    let mut out = Vec::new();
+    for r in rows(dir, Some(split)) {
+        let mut sc = Vec::new();
+        m.scores(
+            &tamis::shard::Row {
+                label: 0,
+                indices: &r.indices,
+                values: &r.values,
+            },
+            &mut sc,
+        );
+        out.push((sc, r.label));
+    }
+    out
+}
+
+/// Invented messages ingested as a binary spam task (2^18 buckets, 30%
+/// validation) into `work/NAME`, and a model trained on it.
+pub fn spam_model(work: &Path, name: &str, loss: &str) -> (PathBuf, PathBuf) {
+    // The TSV stays at `work/NAME.tsv` for scoring.
+    let tsv = work.join(format!("{name}.tsv"));
+    synth_tsv(&tsv, 3000, 5);
+    let dir = work.join(name);
+    ingest(
+        &[&tsv],
+        &dir,
+        &[
+            "--positive",
+            "spam",
+            "--log2-buckets",
+            "18",
+            "--validation",
+            "0.3",
+            "-q",
+        ],
+    )
+    .ok();
+    let model = work.join(format!("{name}.tmm"));
+    train(&dir, &model, &["--epochs", "3", "--loss", loss, "-q"]).ok();
+    (dir, model)
+}
