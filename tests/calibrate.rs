@@ -381,6 +381,9 @@ fn logistic_models_keep_their_probabilities() {
     o.ok();
     assert!(rep["models"][0]["platt"].is_null());
     assert!(model_meta(&model)["calibration"]["platt"].is_null());
+    tamis(["calibrate", s(&model), s(&dir)])
+        .fails()
+        .stderr_has("nothing to calibrate");
     // σ(score), as before calibration.
     let input = t.path().join("l.tsv");
     for r in parse_scores(&score(&model, &[s(&input)]).stdout)
