@@ -335,6 +335,43 @@ fn validation_splits_without_both_classes_are_refused() {
         .fails()
         .stderr_has("only rows of the class")
         .stderr_has(s(&dir2));
+    // No positive row in the validation split: many ham rows and one spam row,
+    // whose text is picked so that the seeded split puts it in training.
+    let ham: String = text
+        .lines()
+        .filter(|l| l.starts_with("ham"))
+        .map(|l| format!("{l}\n"))
+        .collect();
+    let mut refused = false;
+    for i in 0..20 {
+        let dir4 = t.path().join(format!("w{i}"));
+        let tsv4 = t.path().join(format!("w{i}.tsv"));
+        std::fs::write(&tsv4, format!("{ham}spam\tclaim prize {i}\n")).unwrap();
+        ingest(
+            &[&tsv4],
+            &dir4,
+            &["--positive", "spam", "--validation", "0.1", "-q"],
+        )
+        .ok();
+        if split_scores(&model, &dir4, Split::Validation)
+            .iter()
+            .any(|r| r.1 == "spam")
+        {
+            continue;
+        }
+        tamis([
+            "calibrate",
+            s(&model),
+            s(&dir4),
+            "--max-false-positive-rate",
+            "0.1",
+        ])
+        .fails()
+        .stderr_has("has no rows of the class \"spam\"");
+        refused = true;
+        break;
+    }
+    assert!(refused, "no candidate put the spam row in training");
     // No validation split at all.
     let dir3 = t.path().join("z");
     ingest(
