@@ -627,7 +627,7 @@ pub fn html(inp: &ReportInput<'_>) -> Result<String> {
         "Shares of rows by score, the class's own rows against all others; the vertical line is the threshold.",
         "Counts; the shade is the count's share of its true class.",
         if calibrated {
-            "Mean predicted probability against the observed share of positive rows in 10 equal-width bins; points on the diagonal are well calibrated."
+            "Mean predicted probability against the observed share of positive rows in 10 equal-width bins (empty bins left out); points on the diagonal are well calibrated. Bins holding few rows scatter widely; the ECE weighs each bin by its rows."
         } else {
             "The model has no probabilities: the margin is read as log-odds. `tamis calibrate` fits Platt scaling."
         },

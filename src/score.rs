@@ -27,8 +27,8 @@ pub enum Outcome {
         /// Predicted label ([`UNDECIDED`] when a one-vs-rest model with
         /// thresholds finds no class above its threshold).
         label: String,
-        /// The score: the margin `w·x + b` of a binary model, or the largest
-        /// one-vs-rest margin.
+        /// The score: the margin `w·x + b` of a binary model, or the margin of
+        /// the predicted class's model (the largest margin when undecided).
         score: f64,
         /// The probability of the positive class (binary) or of the top class's
         /// model (one-vs-rest, not normalised over classes): Platt scaling for a
@@ -128,25 +128,29 @@ fn score_chunk(
                 values: val,
             };
             model.scores(&row, scores);
-            // The reported score: the binary margin, or the highest one-vs-rest
-            // margin (also when no class clears its threshold).
-            let mut best = 0;
-            for (c, &s) in scores.iter().enumerate() {
-                if s > scores[best] {
-                    best = c;
+            // The reported score: the binary margin, or the margin of the predicted
+            // class (the highest margin when no class clears its threshold).
+            let decision = model.decide(scores);
+            let (label, shown) = match decision {
+                Decision::Class(c) if model.is_binary() => (names[c].clone(), 0),
+                Decision::Class(c) => (names[c].clone(), c),
+                Decision::Undecided => {
+                    let mut best = 0;
+                    for (c, &s) in scores.iter().enumerate() {
+                        if s > scores[best] {
+                            best = c;
+                        }
+                    }
+                    (UNDECIDED.to_string(), best)
                 }
-            }
-            let label = match model.decide(scores) {
-                Decision::Class(c) => names[c].clone(),
-                Decision::Undecided => UNDECIDED.to_string(),
             };
-            let score = scores[best];
+            let score = scores[shown];
             out.push(Outcome::Scored {
                 input: chunk.input,
                 line: f.line,
                 label,
                 score,
-                probability: model.probability(best, score),
+                probability: model.probability(shown, score),
                 truth: f.label.as_deref().map(str::to_string),
                 scores: if mode == LabelMode::Required {
                     scores.clone()

@@ -164,12 +164,82 @@ fn one_vs_rest_thresholds_leave_rows_undecided() {
         .map(|x| x.as_u64().unwrap())
         .sum();
     assert_eq!(got, undecided);
-    // score prints the outcome under its own name.
+    // A low threshold for one class only: rows can now go to a class that is
+    // not the top-scoring one.
+    let (o, _) = calibrate_json(
+        &model,
+        &dir,
+        &["--positive", "accessibility", "--min-recall", "0.99"],
+    );
+    o.ok();
+    let th2: Vec<f64> = model_meta(&model)["calibration"]["thresholds"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(f)
+        .collect();
+    let acc = labels.iter().position(|l| l == "accessibility").unwrap();
+    for c in 0..6 {
+        if c == acc {
+            assert!(th2[c] < th[c]);
+        } else {
+            assert_eq!(th2[c], th[c], "other classes keep their thresholds");
+        }
+    }
+    let th = th2;
+    // score prints the outcome under its own name, and for a decided row the
+    // margin of the class it chose; recomputed here from the model's weights.
     let o = score(&model, &[s(&tsv)]);
-    assert!(o
-        .stdout
-        .lines()
-        .any(|l| l.split('\t').nth(1) == Some("?undecided")));
+    let printed = parse_scores(&o.stdout);
+    let m = tamis::model::Model::load(&model).unwrap();
+    let mut feat = tamis::features::Featurizer::new(&m.meta.features).unwrap();
+    let text = std::fs::read(&tsv).unwrap();
+    let lines: Vec<&[u8]> = text
+        .split(|&b| b == b'\n')
+        .filter(|l| !l.is_empty())
+        .collect();
+    assert_eq!(printed.len(), lines.len());
+    let (mut seen_undecided, mut seen_other_than_top) = (0, 0);
+    for (line, p) in lines.iter().zip(&printed) {
+        let Scored::Row { label, score, .. } = p else {
+            panic!("{p:?}")
+        };
+        let tab = line.iter().position(|&b| b == b'\t').unwrap();
+        feat.begin_row();
+        feat.add_text(0, &line[tab + 1..]);
+        let (mut idx, mut val) = (Vec::new(), Vec::new());
+        feat.finish_row(&mut idx, &mut val);
+        let mut sc = Vec::new();
+        m.scores(
+            &tamis::shard::Row {
+                label: 0,
+                indices: &idx,
+                values: &val,
+            },
+            &mut sc,
+        );
+        let top = (0..6).max_by(|&a, &b| sc[a].total_cmp(&sc[b])).unwrap();
+        let chosen = (0..6)
+            .filter(|&c| sc[c] >= th[c])
+            .max_by(|&a, &b| sc[a].total_cmp(&sc[b]));
+        match chosen {
+            Some(c) => {
+                assert_eq!(label, &labels[c]);
+                assert!((score - sc[c]).abs() < 1e-5, "{score} vs {}", sc[c]);
+                seen_other_than_top += (c != top) as u32;
+            }
+            None => {
+                assert_eq!(label, "?undecided");
+                assert!((score - sc[top]).abs() < 1e-5);
+                seen_undecided += 1;
+            }
+        }
+    }
+    assert!(seen_undecided > 0);
+    assert!(
+        seen_other_than_top > 0,
+        "no row exercised the rule's second class"
+    );
 }
 
 #[test]
@@ -265,6 +335,43 @@ fn validation_splits_without_both_classes_are_refused() {
         .fails()
         .stderr_has("only rows of the class")
         .stderr_has(s(&dir2));
+    // No positive row in the validation split: many ham rows and one spam row,
+    // whose text is picked so that the seeded split puts it in training.
+    let ham: String = text
+        .lines()
+        .filter(|l| l.starts_with("ham"))
+        .map(|l| format!("{l}\n"))
+        .collect();
+    let mut refused = false;
+    for i in 0..20 {
+        let dir4 = t.path().join(format!("w{i}"));
+        let tsv4 = t.path().join(format!("w{i}.tsv"));
+        std::fs::write(&tsv4, format!("{ham}spam\tclaim prize {i}\n")).unwrap();
+        ingest(
+            &[&tsv4],
+            &dir4,
+            &["--positive", "spam", "--validation", "0.1", "-q"],
+        )
+        .ok();
+        if split_scores(&model, &dir4, Split::Validation)
+            .iter()
+            .any(|r| r.1 == "spam")
+        {
+            continue;
+        }
+        tamis([
+            "calibrate",
+            s(&model),
+            s(&dir4),
+            "--max-false-positive-rate",
+            "0.1",
+        ])
+        .fails()
+        .stderr_has("has no rows of the class \"spam\"");
+        refused = true;
+        break;
+    }
+    assert!(refused, "no candidate put the spam row in training");
     // No validation split at all.
     let dir3 = t.path().join("z");
     ingest(
@@ -311,6 +418,9 @@ fn logistic_models_keep_their_probabilities() {
     o.ok();
     assert!(rep["models"][0]["platt"].is_null());
     assert!(model_meta(&model)["calibration"]["platt"].is_null());
+    tamis(["calibrate", s(&model), s(&dir)])
+        .fails()
+        .stderr_has("nothing to calibrate");
     // σ(score), as before calibration.
     let input = t.path().join("l.tsv");
     for r in parse_scores(&score(&model, &[s(&input)]).stdout)

@@ -189,6 +189,9 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
             ),
         },
     };
+    if target.is_none() && model.meta.loss == tamis::solver::Loss::Logistic {
+        bail!("nothing to calibrate: a logistic model's probabilities are σ(score) already; give a target (--max-false-positive-rate, --min-precision or --min-recall)");
+    }
     if only.is_some() && target.is_none() {
         bail!(
             "--positive needs a target: --max-false-positive-rate, --min-precision or --min-recall"
