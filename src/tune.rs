@@ -16,11 +16,13 @@ use std::time::Instant;
 
 use serde::Serialize;
 
+use crate::calibrate::Platt;
 use crate::checkpoint::EpochSums;
 use crate::dataset::{Log, Manifest, ShardEntry, Split};
 use crate::error::{Error, Result};
-use crate::eval::{per_class, Evaluation};
+use crate::eval::{per_class, rank, score_shards, Evaluation};
 use crate::model::{EpochLog, Model, TrainSettings};
+use crate::shard::Shard;
 use crate::solver::lanes::Lanes;
 use crate::solver::{Loss, SolverConfig, Target};
 use crate::train::{self, ClassWeight, Iterate, Rate, Sweep, Validation};
@@ -29,6 +31,11 @@ use crate::train::{self, ClassWeight, Iterate, Rate, Sweep, Validation};
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, clap::ValueEnum)]
 #[serde(rename_all = "kebab-case")]
 pub enum Metric {
+    /// Mean log loss after Platt scaling fitted on the validation split (lower
+    /// is better; one-vs-rest: the mean over classes of each class's model
+    /// against the rest). Platt scaling puts hinge and logistic candidates on
+    /// the same footing: both are judged as calibrated probabilities.
+    LogLoss,
     /// Share of validation rows predicted right (higher is better).
     Accuracy,
     /// Mean F1 over classes (higher is better; binary: over both classes).
@@ -42,6 +49,7 @@ impl Metric {
     /// Name used in tables and JSON.
     pub fn name(self) -> &'static str {
         match self {
+            Metric::LogLoss => "log-loss",
             Metric::Accuracy => "accuracy",
             Metric::MacroF1 => "macro-F1",
             Metric::HingeLoss => "hinge-loss",
@@ -50,7 +58,7 @@ impl Metric {
 
     /// Whether larger values are better.
     pub fn higher_is_better(self) -> bool {
-        !matches!(self, Metric::HingeLoss)
+        !matches!(self, Metric::HingeLoss | Metric::LogLoss)
     }
 }
 
@@ -97,6 +105,8 @@ pub struct Candidate {
     pub lambda: f64,
     /// Loss.
     pub loss: Loss,
+    /// Validation log loss after Platt scaling (see [`Metric::LogLoss`]).
+    pub log_loss: Option<f64>,
     /// Validation accuracy after the last epoch.
     pub accuracy: Option<f64>,
     /// Validation macro-F1 after the last epoch.
@@ -318,7 +328,34 @@ fn run(
         ));
         log(&line);
     }
-    // Measure and rank.
+    // Every surviving candidate's model, then its validation figures.
+    let mut all = weights_of(&lanes, per);
+    let models: Vec<Option<Model>> = (0..k)
+        .map(|c| {
+            failed[c].is_none().then(|| {
+                let training = TrainSettings {
+                    solver: settings[c].clone(),
+                    epochs: opts.epochs,
+                    seed: opts.seed,
+                    class_weights: class_weights.clone(),
+                    class_weight_rule: rule.clone(),
+                    idf: opts.idf,
+                    patience: None,
+                    init_from: None,
+                };
+                train::build_model(
+                    m,
+                    positive,
+                    training,
+                    logs[c].clone(),
+                    std::mem::take(&mut all[c]),
+                    lanes.t,
+                    idf.clone(),
+                    sketch.clone(),
+                )
+            })
+        })
+        .collect();
     let mut candidates: Vec<Candidate> = settings
         .iter()
         .enumerate()
@@ -330,7 +367,11 @@ fn run(
             });
             let accuracy = e.map(|e| e.accuracy);
             let hinge_loss = e.map(|e| e.hinge);
+            let log_loss = models[c]
+                .as_ref()
+                .and_then(|model| platt_log_loss(&valid, model, positive));
             let score = match opts.metric {
+                Metric::LogLoss => log_loss,
                 Metric::Accuracy => accuracy,
                 Metric::MacroF1 => macro_f1,
                 Metric::HingeLoss => hinge_loss,
@@ -338,6 +379,7 @@ fn run(
             Candidate {
                 lambda: cfg.lambda,
                 loss: cfg.loss,
+                log_loss,
                 accuracy,
                 macro_f1,
                 hinge_loss,
@@ -349,33 +391,12 @@ fn run(
         })
         .collect();
     let best = best_of(&candidates, opts.metric).ok_or_else(|| {
-        Error::Invalid("every candidate diverged; try larger λ values or a smaller --eta0".into())
-    })?;
-    let mut all = weights_of(&lanes, per);
-    let mut model_of = |c: usize| {
-        let training = TrainSettings {
-            solver: settings[c].clone(),
-            epochs: opts.epochs,
-            seed: opts.seed,
-            class_weights: class_weights.clone(),
-            class_weight_rule: rule.clone(),
-            idf: opts.idf,
-            patience: None,
-            init_from: None,
-        };
-        train::build_model(
-            m,
-            positive,
-            training,
-            logs[c].clone(),
-            std::mem::take(&mut all[c]),
-            lanes.t,
-            idf.clone(),
-            sketch.clone(),
+        Error::Invalid(
+            "no candidate could be measured (all diverged, or the validation split lacks a class); try larger λ values or a smaller --eta0".into(),
         )
-    };
-    // The best model is written first; with `keep`, every other one follows.
-    let model = model_of(best);
+    })?;
+    let mut models = models;
+    let model = models[best].take().expect("the best candidate has a model");
     model.save(&opts.model)?;
     if let Some(dir) = &opts.keep {
         std::fs::create_dir_all(dir).map_err(|cause| Error::Io {
@@ -383,14 +404,13 @@ fn run(
             cause,
         })?;
         for (c, cand) in candidates.iter_mut().enumerate() {
-            if cand.failed.is_some() {
-                continue;
-            }
             let path = dir.join(candidate_file(cand));
             if c == best {
                 model.save(&path)?;
+            } else if let Some(mc) = &models[c] {
+                mc.save(&path)?;
             } else {
-                model_of(c).save(&path)?;
+                continue;
             }
             cand.model = Some(path);
         }
@@ -402,6 +422,21 @@ fn run(
         seconds: start.elapsed().as_secs_f64(),
         rows_per_epoch: m.train_rows(),
     })
+}
+
+/// The validation log loss of `model` after Platt scaling fitted on the same
+/// scores (Platt 1999, in the form of Lin, Lin and Weng 2007), averaged over its
+/// models; `None` when a model's rows lack a class.
+fn platt_log_loss(valid: &[Shard], model: &Model, positive: Option<u32>) -> Option<f64> {
+    let scored = score_shards(valid, model, positive);
+    let mut sum = 0.0;
+    for k in 0..scored.models {
+        let (f, y) = scored.one_vs_rest(k);
+        let platt = Platt::fit(&f, &y)?;
+        let p: Vec<f64> = f.iter().map(|&x| platt.probability(x)).collect();
+        sum += rank::log_loss(&p, &y)?;
+    }
+    Some(sum / scored.models as f64)
 }
 
 /// Every candidate's averaged weights and biases (each `per` lanes, in order).
@@ -459,6 +494,7 @@ mod tests {
         Candidate {
             lambda,
             loss: Loss::Hinge,
+            log_loss: score,
             accuracy: score,
             macro_f1: score,
             hinge_loss: score,
@@ -479,6 +515,7 @@ mod tests {
         ];
         assert_eq!(best_of(&c, Metric::Accuracy), Some(3));
         assert_eq!(best_of(&c, Metric::HingeLoss), Some(0));
+        assert_eq!(best_of(&c, Metric::LogLoss), Some(0));
         assert_eq!(best_of(&[cand(1.0, None)], Metric::Accuracy), None);
     }
 }

@@ -39,8 +39,9 @@ pub struct Args {
     )]
     pub losses: Vec<Loss>,
 
-    /// How candidates are compared on the validation split.
-    #[arg(long, value_enum, default_value_t = Metric::Accuracy)]
+    /// How candidates are compared on the validation split (log-loss: after
+    /// Platt scaling fitted on it, so every loss is judged as probabilities).
+    #[arg(long, value_enum, default_value_t = Metric::LogLoss)]
     pub metric: Metric,
 
     /// Passes over the training rows, for every candidate.
@@ -81,7 +82,7 @@ pub struct Args {
     pub keep: Option<PathBuf>,
 
     /// Print the table as JSON (keys: metric, best, candidates with lambda, loss,
-    /// accuracy, macro_f1, hinge_loss, score, failed, model).
+    /// log_loss, accuracy, macro_f1, hinge_loss, score, failed, model).
     #[arg(long)]
     pub json: bool,
 
@@ -129,9 +130,10 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
     let pct = |x: Option<f64>| x.map_or("-".to_string(), |v| format!("{:.2}%", 100.0 * v));
     let num = |x: Option<f64>| x.map_or("-".to_string(), |v| format!("{v:.4}"));
     outln!(
-        "{:>14} {:>10} {:>9} {:>9} {:>10}  ",
+        "{:>14} {:>10} {:>9} {:>9} {:>9} {:>9}",
         "loss",
         "lambda",
+        "log-loss",
         "val-acc",
         "macro-F1",
         "hinge"
@@ -144,9 +146,10 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
             .map(|_| "  diverged".to_string())
             .unwrap_or_default();
         outln!(
-            "{:>14} {:>10} {:>9} {:>9} {:>10}{mark}{note}",
+            "{:>14} {:>10} {:>9} {:>9} {:>9} {:>9}{mark}{note}",
             c.loss.name(),
             format!("{:e}", c.lambda),
+            num(c.log_loss),
             pct(c.accuracy),
             num(c.macro_f1),
             num(c.hinge_loss),
