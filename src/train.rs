@@ -702,12 +702,14 @@ impl Run<'_> {
                 break;
             }
             let resumed = first.take().filter(|p| p.epoch == epoch);
-            let list = if epoch == start_epoch {
+            let from = resumed.map_or((0, 0), |p| (p.group as usize, p.taken));
+            // An epoch resumed part-way keeps the shards it started with; shards
+            // appended since join when an epoch starts.
+            let list = if epoch == start_epoch && from != (0, 0) {
                 &first_list
             } else {
                 &all
             };
-            let from = resumed.map_or((0, 0), |p| (p.group as usize, p.taken));
             let mut sums = std::mem::take(&mut first_sums);
             let (rows_before, nnz_before) = (sums.rows, sums.nnz);
             let t0 = Instant::now();
