@@ -467,8 +467,9 @@ fn process(
             if let Some(tc) = tokens.as_deref_mut() {
                 tc.next_row();
                 for (i, t) in f.texts.iter().enumerate() {
+                    let mut words = tc.field(i);
                     invalid += feat
-                        .add_text_with(i, t, |tok, h| tc.see(i, tok, h))
+                        .add_text_with(i, t, |tok, h| words.see(tok, h))
                         .invalid_utf8;
                 }
             } else {

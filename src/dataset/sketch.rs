@@ -603,26 +603,17 @@ impl FieldCounter {
     }
 }
 
-impl ChunkCounter {
-    /// A counter for `fields` text fields.
-    pub fn new(fields: usize) -> Self {
-        ChunkCounter {
-            fields: (0..fields).map(|_| FieldCounter::default()).collect(),
-            row: 0,
-        }
-    }
+/// The counter of one text field for the current row ([`ChunkCounter::field`]).
+pub struct FieldTokens<'a> {
+    f: &'a mut FieldCounter,
+    row: u32,
+}
 
-    /// Start a row: tokens seen from here on count once each until the next call.
-    #[inline]
-    pub fn next_row(&mut self) {
-        self.row += 1;
-    }
-
-    /// Count `token` (with unigram hash `hash`) in text field `field`, once per row.
-    #[inline]
-    pub fn see(&mut self, field: usize, token: &[u8], hash: u64) {
-        let row = self.row;
-        let f = &mut self.fields[field];
+impl FieldTokens<'_> {
+    /// Count `token` (with unigram hash `hash`), once per row.
+    #[inline(always)]
+    pub fn see(&mut self, token: &[u8], hash: u64) {
+        let (row, f) = (self.row, &mut *self.f);
         let mask = f.table.len() - 1;
         let mut i = hash as usize & mask;
         loop {
@@ -652,6 +643,38 @@ impl ChunkCounter {
                 return;
             }
             i = (i + 1) & mask;
+        }
+    }
+}
+
+impl ChunkCounter {
+    /// A counter for `fields` text fields.
+    pub fn new(fields: usize) -> Self {
+        ChunkCounter {
+            fields: (0..fields).map(|_| FieldCounter::default()).collect(),
+            row: 0,
+        }
+    }
+
+    /// Start a row: tokens seen from here on count once each until the next call.
+    #[inline]
+    pub fn next_row(&mut self) {
+        self.row += 1;
+    }
+
+    /// Count `token` (with unigram hash `hash`) in text field `field`, once per row.
+    #[inline]
+    pub fn see(&mut self, field: usize, token: &[u8], hash: u64) {
+        self.field(field).see(token, hash);
+    }
+
+    /// The counter of text field `field` for the current row (look the field up
+    /// once per text, not once per word).
+    #[inline]
+    pub fn field(&mut self, field: usize) -> FieldTokens<'_> {
+        FieldTokens {
+            f: &mut self.fields[field],
+            row: self.row,
         }
     }
 
