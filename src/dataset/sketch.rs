@@ -466,23 +466,22 @@ pub fn write(path: &Path, sketch: &TokenSketch, batch: u32) -> Result<u64> {
         batch as u64,
     ]);
     w.finish()?;
-    let c = Container::parse(
+    Ok(open(path)?.header_checksum())
+}
+
+/// Map a sketch file and check its header.
+fn open(path: &Path) -> Result<Container<container::FileBytes>> {
+    Container::parse(
         container::map_file(path)?,
         path,
         Kind::TokenSketch,
         VERSION..=VERSION,
-    )?;
-    Ok(c.header_checksum())
+    )
 }
 
 /// Open a sketch file, verify every checksum and parse it.
 pub fn read(path: &Path) -> Result<(TokenSketch, u64)> {
-    let c = Container::parse(
-        container::map_file(path)?,
-        path,
-        Kind::TokenSketch,
-        VERSION..=VERSION,
-    )?;
+    let c = open(path)?;
     c.verify(|id| match id {
         SEC_SKETCH => "sketch".into(),
         other => format!("unknown section {other}"),
