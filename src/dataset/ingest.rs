@@ -33,7 +33,7 @@ use super::manifest::{
     Batch, DocFreqEntry, InputEntry, LabelEntry, Manifest, ScatterRule, ShardEntry,
     SketchFileEntry, Split, SplitRule, FORMAT_NAME, MANIFEST_FILE, VERSION,
 };
-use super::sketch::{self, ChunkCounter, FieldSketch, TokenSketch};
+use super::sketch::{self, ChunkCounter, ChunkField, TokenSketch};
 use crate::error::{Error, IoContext, Result};
 use crate::features::{CharNgrams, FeatureConfig, Featurizer, HASH_SCHEME};
 use crate::input::{
@@ -421,7 +421,7 @@ struct ChunkOut {
     blank: u64,
     lossy: u64,
     /// The chunk's token summaries, one per text field.
-    sketch: Option<Vec<FieldSketch>>,
+    sketch: Option<Vec<ChunkField>>,
 }
 
 struct Worker {
@@ -467,8 +467,9 @@ fn process(
             if let Some(tc) = tokens.as_deref_mut() {
                 tc.next_row();
                 for (i, t) in f.texts.iter().enumerate() {
+                    let mut words = tc.field(i);
                     invalid += feat
-                        .add_text_with(i, t, |tok, h| tc.see(i, tok, h))
+                        .add_text_with(i, t, |tok, h| words.see(tok, h))
                         .invalid_utf8;
                 }
             } else {
@@ -738,7 +739,7 @@ impl Sink {
 
     fn push(&mut self, mut c: ChunkOut) -> Result<()> {
         if let (Some(g), Some(cs)) = (&mut self.sketch, c.sketch.take()) {
-            g.merge_fields(&cs);
+            g.merge_chunk(&cs);
         }
         let writers = self.m.scatter.writers as u64;
         let scatter_seed = self.m.scatter.seed;

@@ -69,6 +69,7 @@
 //! UTF-8, that `error ≤ count`, and (given the feature settings) that every
 //! hash is the hash of its token.
 
+use std::borrow::Cow;
 use std::collections::HashMap;
 use std::hash::{BuildHasherDefault, Hasher};
 use std::path::Path;
@@ -148,26 +149,54 @@ impl FieldSketch {
     /// Merge `other` into this summary, keeping at most `capacity` entries (see
     /// the module documentation for the rule and its guarantees).
     pub fn merge(&mut self, other: &FieldSketch, capacity: usize) {
-        let (m1, m2) = (self.floor, other.floor);
+        let entries = other
+            .entries
+            .iter()
+            .map(|e| (e.hash, e.count, e.error, Cow::Borrowed(e.token.as_str())));
+        self.merge_entries(other.floor, other.total, entries, capacity);
+    }
+
+    /// Merge the summary of one chunk (see [`ChunkCounter::finish`]).
+    pub fn merge_chunk(&mut self, other: &ChunkField, capacity: usize) {
+        let entries = other.entries.iter().map(|&(hash, count, start, len)| {
+            let t = &other.text[start as usize..(start + len) as usize];
+            // Tokens are UTF-8 (the tokenizer decodes): the lossy copy is a
+            // fallback that never runs.
+            (hash, count, 0, String::from_utf8_lossy(t))
+        });
+        self.merge_entries(other.floor, other.total, entries, capacity);
+    }
+
+    /// The merge rule of the module documentation, over the entries
+    /// `(hash, count, error, token)` of a summary with floor `m2` and stream
+    /// length `total`. Token text is copied only for tokens new to this sketch.
+    fn merge_entries<'a>(
+        &mut self,
+        m2: u64,
+        total: u64,
+        entries: impl Iterator<Item = (u64, u64, u64, Cow<'a, str>)>,
+        capacity: usize,
+    ) {
+        let m1 = self.floor;
         let mut index: HashMap<u64, usize, IdBuild> =
             HashMap::with_capacity_and_hasher(self.entries.len(), IdBuild::default());
         for (i, e) in self.entries.iter().enumerate() {
             index.insert(e.hash, i);
         }
         let mut touched = vec![false; self.entries.len()];
-        for e in &other.entries {
-            match index.get(&e.hash) {
+        for (hash, count, error, token) in entries {
+            match index.get(&hash) {
                 Some(&i) => {
                     let s = &mut self.entries[i];
-                    s.count += e.count;
-                    s.error += e.error;
+                    s.count += count;
+                    s.error += error;
                     touched[i] = true;
                 }
                 None => self.entries.push(SketchEntry {
-                    hash: e.hash,
-                    count: e.count + m1,
-                    error: e.error + m1,
-                    token: e.token.clone(),
+                    hash,
+                    count: count + m1,
+                    error: error + m1,
+                    token: token.into_owned(),
                 }),
             }
         }
@@ -177,7 +206,7 @@ impl FieldSketch {
                 e.error += m2;
             }
         }
-        self.total += other.total;
+        self.total += total;
         self.truncate(capacity, m1 + m2);
     }
 
@@ -213,6 +242,14 @@ impl TokenSketch {
         let cap = self.capacity as usize;
         for (a, b) in self.fields.iter_mut().zip(other) {
             a.merge(b, cap);
+        }
+    }
+
+    /// Merge the per-field summaries of one chunk into this sketch.
+    pub fn merge_chunk(&mut self, chunk: &[ChunkField]) {
+        let cap = self.capacity as usize;
+        for (a, b) in self.fields.iter_mut().zip(chunk) {
+            a.merge_chunk(b, cap);
         }
     }
 
@@ -429,23 +466,22 @@ pub fn write(path: &Path, sketch: &TokenSketch, batch: u32) -> Result<u64> {
         batch as u64,
     ]);
     w.finish()?;
-    let c = Container::parse(
+    Ok(open(path)?.header_checksum())
+}
+
+/// Map a sketch file and check its header.
+fn open(path: &Path) -> Result<Container<container::FileBytes>> {
+    Container::parse(
         container::map_file(path)?,
         path,
         Kind::TokenSketch,
         VERSION..=VERSION,
-    )?;
-    Ok(c.header_checksum())
+    )
 }
 
 /// Open a sketch file, verify every checksum and parse it.
 pub fn read(path: &Path) -> Result<(TokenSketch, u64)> {
-    let c = Container::parse(
-        container::map_file(path)?,
-        path,
-        Kind::TokenSketch,
-        VERSION..=VERSION,
-    )?;
+    let c = open(path)?;
     c.verify(|id| match id {
         SEC_SKETCH => "sketch".into(),
         other => format!("unknown section {other}"),
@@ -515,21 +551,99 @@ pub struct ChunkCounter {
     row: u32,
 }
 
-/// A counted token: rows, the last row it was counted in, and where its text
-/// lies in the arena (one map value, so a repeated token costs one probe).
-#[derive(Clone, Copy)]
+/// A counted token: its hash, rows, the last row it was counted in, and where
+/// its text lies in the arena (`len == 0` marks an empty slot: tokens are never
+/// empty).
+#[derive(Clone, Copy, Default)]
 struct Slot {
+    hash: u64,
     count: u32,
     last_row: u32,
     start: u32,
     len: u32,
 }
 
-#[derive(Default)]
+/// An open-addressing table (linear probing, at most half full) of the chunk's
+/// tokens: a repeated token costs one probe, usually in one cache line.
 struct FieldCounter {
-    index: HashMap<u64, Slot, IdBuild>,
+    table: Vec<Slot>,
+    /// Positions in use, in order of first sight (also what to clear).
+    used: Vec<u32>,
     text: Vec<u8>,
     total: u64,
+}
+
+impl Default for FieldCounter {
+    fn default() -> Self {
+        FieldCounter {
+            table: vec![Slot::default(); 1 << 12],
+            used: Vec::new(),
+            text: Vec::new(),
+            total: 0,
+        }
+    }
+}
+
+impl FieldCounter {
+    /// Double the table and put every token back.
+    fn grow(&mut self) {
+        let mut table = vec![Slot::default(); self.table.len() * 2];
+        let mask = table.len() - 1;
+        for p in &mut self.used {
+            let s = self.table[*p as usize];
+            let mut i = s.hash as usize & mask;
+            while table[i].len != 0 {
+                i = (i + 1) & mask;
+            }
+            table[i] = s;
+            *p = i as u32;
+        }
+        self.table = table;
+    }
+}
+
+/// The counter of one text field for the current row ([`ChunkCounter::field`]).
+pub struct FieldTokens<'a> {
+    f: &'a mut FieldCounter,
+    row: u32,
+}
+
+impl FieldTokens<'_> {
+    /// Count `token` (with unigram hash `hash`), once per row.
+    #[inline(always)]
+    pub fn see(&mut self, token: &[u8], hash: u64) {
+        let (row, f) = (self.row, &mut *self.f);
+        let mask = f.table.len() - 1;
+        let mut i = hash as usize & mask;
+        loop {
+            let s = &mut f.table[i];
+            if s.len == 0 {
+                *s = Slot {
+                    hash,
+                    count: 1,
+                    last_row: row,
+                    start: f.text.len() as u32,
+                    len: token.len() as u32,
+                };
+                f.text.extend_from_slice(token);
+                f.total += 1;
+                f.used.push(i as u32);
+                if 2 * f.used.len() > f.table.len() {
+                    f.grow();
+                }
+                return;
+            }
+            if s.hash == hash {
+                if s.last_row != row {
+                    s.last_row = row;
+                    s.count += 1;
+                    f.total += 1;
+                }
+                return;
+            }
+            i = (i + 1) & mask;
+        }
+    }
 }
 
 impl ChunkCounter {
@@ -550,69 +664,71 @@ impl ChunkCounter {
     /// Count `token` (with unigram hash `hash`) in text field `field`, once per row.
     #[inline]
     pub fn see(&mut self, field: usize, token: &[u8], hash: u64) {
-        let row = self.row;
-        let f = &mut self.fields[field];
-        match f.index.entry(hash) {
-            std::collections::hash_map::Entry::Occupied(mut o) => {
-                let s = o.get_mut();
-                if s.last_row != row {
-                    s.last_row = row;
-                    s.count += 1;
-                    f.total += 1;
-                }
-            }
-            std::collections::hash_map::Entry::Vacant(v) => {
-                v.insert(Slot {
-                    count: 1,
-                    last_row: row,
-                    start: f.text.len() as u32,
-                    len: token.len() as u32,
-                });
-                f.text.extend_from_slice(token);
-                f.total += 1;
-            }
+        self.field(field).see(token, hash);
+    }
+
+    /// The counter of text field `field` for the current row (look the field up
+    /// once per text, not once per word).
+    #[inline]
+    pub fn field(&mut self, field: usize) -> FieldTokens<'_> {
+        FieldTokens {
+            f: &mut self.fields[field],
+            row: self.row,
         }
     }
 
     /// The chunk's summaries (at most `capacity` entries per field, floor =
     /// largest count dropped); the counter is emptied for the next chunk.
-    pub fn finish(&mut self, capacity: usize) -> Vec<FieldSketch> {
+    pub fn finish(&mut self, capacity: usize) -> Vec<ChunkField> {
         self.row = 0;
         let mut out = Vec::with_capacity(self.fields.len());
         for f in &mut self.fields {
-            let mut ids: Vec<(u64, Slot)> = f.index.drain().collect();
-            let key = |e: &(u64, Slot)| (std::cmp::Reverse(e.1.count), e.0);
-            let mut floor = 0;
-            if ids.len() > capacity {
-                ids.select_nth_unstable_by_key(capacity, key);
-                floor = ids[capacity..]
-                    .iter()
-                    .map(|e| e.1.count as u64)
-                    .max()
-                    .unwrap_or(0);
-                ids.truncate(capacity);
-            }
-            let entries = ids
-                .iter()
-                .map(|&(hash, s)| SketchEntry {
-                    hash,
-                    count: s.count as u64,
-                    error: 0,
-                    token: String::from_utf8_lossy(
-                        &f.text[s.start as usize..(s.start + s.len) as usize],
-                    )
-                    .into_owned(),
+            let mut entries: Vec<(u64, u64, u32, u32)> = f
+                .used
+                .drain(..)
+                .map(|p| {
+                    let s = std::mem::take(&mut f.table[p as usize]);
+                    (s.hash, s.count as u64, s.start, s.len)
                 })
                 .collect();
-            out.push(FieldSketch {
+            let mut floor = 0;
+            if entries.len() > capacity {
+                entries.select_nth_unstable_by_key(capacity, |e| (std::cmp::Reverse(e.1), e.0));
+                floor = entries[capacity..].iter().map(|e| e.1).max().unwrap_or(0);
+                entries.truncate(capacity);
+            }
+            let cap = f.text.capacity();
+            let text = std::mem::replace(&mut f.text, Vec::with_capacity(cap));
+            out.push(ChunkField {
                 total: f.total,
                 floor,
                 entries,
+                text,
             });
-            f.text.clear();
             f.total = 0;
         }
         out
+    }
+}
+
+/// The summary of one text field of one chunk: entries `(hash, count, text
+/// start, text length)`, exact counts (error 0), their text in one buffer.
+#[derive(Debug, Default)]
+pub struct ChunkField {
+    /// Stream length of the chunk.
+    pub total: u64,
+    /// No token left out was seen in more of the chunk's rows than this.
+    pub floor: u64,
+    entries: Vec<(u64, u64, u32, u32)>,
+    text: Vec<u8>,
+}
+
+impl ChunkField {
+    /// As a [`FieldSketch`] (for tests and tools; ingest merges chunks directly).
+    pub fn to_sketch(&self) -> FieldSketch {
+        let mut f = FieldSketch::default();
+        f.merge_chunk(self, self.entries.len().max(1));
+        f
     }
 }
 
@@ -736,7 +852,8 @@ mod tests {
                 c.see(0, t.as_bytes(), xxh3_64_with_seed(t.as_bytes(), 0));
             }
         }
-        let mut f = c.finish(10);
+        let chunk = c.finish(10);
+        let mut f = vec![chunk[0].to_sketch()];
         assert_eq!(f[0].total, 5);
         f[0].sort();
         let mut got: Vec<(&str, u64)> = f[0]
@@ -826,7 +943,7 @@ mod tests {
                     c.see(0, tok(t).as_bytes(), h(t));
                 }
             }
-            g.merge_fields(&c.finish(capacity));
+            g.merge_chunk(&c.finish(capacity));
         }
         g.fields.pop().unwrap()
     }

@@ -598,33 +598,39 @@ impl Featurizer {
             text: out,
             ..
         } = self;
-        let on_token = |tok: &[u8], placeholder: bool| {
-            let h = xxh3_64_with_seed(tok, seed);
-            on_word(tok, h);
-            out.push(key(h, mask));
-            if n > 1 {
-                // `recent` holds the previous min(count, n-1) unigram hashes,
-                // oldest first, followed by this one.
-                let have = count.min(n - 1);
-                recent[have] = h;
-                for order in 2..=have + 1 {
-                    let gram = &recent[have + 1 - order..=have];
-                    out.push(key(ngram_hash(seed, gram), mask));
+        // The work per token, written once and expanded into each tokenizer's
+        // closure, so the unmasked path stays one closure without a call.
+        macro_rules! on_token {
+            ($tok:expr, $placeholder:expr) => {{
+                let tok: &[u8] = $tok;
+                let h = xxh3_64_with_seed(tok, seed);
+                on_word(tok, h);
+                out.push(key(h, mask));
+                if n > 1 {
+                    // `recent` holds the previous min(count, n-1) unigram hashes,
+                    // oldest first, followed by this one.
+                    let have = count.min(n - 1);
+                    recent[have] = h;
+                    for order in 2..=have + 1 {
+                        let gram = &recent[have + 1 - order..=have];
+                        out.push(key(ngram_hash(seed, gram), mask));
+                    }
+                    if have == n - 1 {
+                        recent.copy_within(1..n, 0);
+                    }
                 }
-                if have == n - 1 {
-                    recent.copy_within(1..n, 0);
+                if let (Some(cn), false) = (chars, $placeholder) {
+                    char_grams(tok, cn, seed, mask, padded, bounds, out);
                 }
-            }
-            if let (Some(cn), false) = (chars, placeholder) {
-                char_grams(tok, cn, seed, mask, padded, bounds, out);
-            }
-            count += 1;
-        };
+                count += 1;
+            }};
+        }
         let invalid = if masks.any() {
-            tokenize_masked(text, masks, token, masked, on_token)
+            tokenize_masked(text, masks, token, masked, |tok, placeholder| {
+                on_token!(tok, placeholder)
+            })
         } else {
-            let mut on_token = on_token;
-            tokenize(text, token, |t| on_token(t, false))
+            tokenize(text, token, |tok| on_token!(tok, false))
         };
         TextStats {
             tokens: count as u32,
