@@ -40,6 +40,7 @@ compile_error!(
     "tamis maps its little-endian files directly and supports little-endian targets only"
 );
 
+pub mod bench;
 pub mod container;
 pub mod dataset;
 pub mod error;

@@ -9,6 +9,7 @@ macro_rules! outln {
     }};
 }
 
+pub mod bench;
 pub mod demo;
 pub mod eval;
 pub mod ingest;
@@ -50,6 +51,9 @@ enum Command {
     Verify(verify::Args),
     /// Run the whole job on built-in invented demo data.
     Demo(demo::Args),
+    /// Measure ingest, training and scoring on this machine, against plain
+    /// reads of the same bytes.
+    Bench(Box<bench::Args>),
 }
 
 /// Run the parsed command line.
@@ -62,6 +66,7 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::Train(a) => train::run(*a),
         Command::Verify(a) => verify::run(a),
         Command::Demo(a) => demo::run(a),
+        Command::Bench(a) => bench::run(*a),
     }
 }
 
