@@ -394,26 +394,28 @@ pub fn run(opts: &BenchOptions, progress: &dyn Fn(&str)) -> Result<BenchReport> 
             peak_rss_anon: peak,
             ratio_to_limit: Some(secs / in_secs.max(1e-9)),
         });
+        if name == "ds-n" {
+            // The single-thread copy must be the same dataset (same shard
+            // checksums); it is then removed to save disk.
+            let (one, many) = (Manifest::load(&ds("ds-1"))?, m);
+            let same = one.shards.len() == many.shards.len()
+                && one
+                    .shards
+                    .iter()
+                    .zip(&many.shards)
+                    .all(|(a, b)| a.file == b.file && a.checksum == b.checksum);
+            if !same {
+                return Err(Error::Invalid(
+                    "the datasets ingested with 1 and with N threads differ: please report this"
+                        .into(),
+                ));
+            }
+            std::fs::remove_dir_all(ds("ds-1")).at(ds("ds-1"))?;
+        }
     }
-    // The 6-class dataset used from here on; the single-thread copy must be
-    // byte-identical, which is checked (and then removed to save disk).
+    // The 6-class dataset used from here on.
     let multi = if n > 1 { ds("ds-n") } else { ds("ds-1") };
     let manifest = Manifest::load(&multi)?;
-    if n > 1 {
-        let one = Manifest::load(&ds("ds-1"))?;
-        let same = one.shards.len() == manifest.shards.len()
-            && one
-                .shards
-                .iter()
-                .zip(&manifest.shards)
-                .all(|(a, b)| a.file == b.file && a.checksum == b.checksum);
-        if !same {
-            return Err(Error::Invalid(
-                "the datasets ingested with 1 and with N threads differ: please report this".into(),
-            ));
-        }
-        std::fs::remove_dir_all(ds("ds-1")).at(ds("ds-1"))?;
-    }
 
     // Limit 2: a plain read of the shards.
     progress("reading the shards (limit)");
