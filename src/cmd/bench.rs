@@ -12,8 +12,8 @@ use tamis::train::{self, ClassWeight, TrainOptions};
 /// Options of `tamis bench`.
 #[derive(Debug, clap::Args)]
 pub struct Args {
-    /// Size of the invented input to generate, e.g. 250MB, 1GB, 4GiB (the
-    /// shards take about twice as much disk, the datasets three times that).
+    /// Size of the invented input to generate, e.g. 250MB, 1GB, 4GiB (a run
+    /// needs about 5.5 times that of free disk at its peak).
     #[arg(long, default_value = "1GB", value_parser = bench::parse_size, value_name = "SIZE")]
     pub size: u64,
 
