@@ -410,6 +410,8 @@ pub struct Featurizer {
     text: Vec<u32>,
     numeric: Vec<(u32, f32)>,
     merged: Vec<(u32, f32)>,
+    /// Scratch of [`sort_keys`].
+    sorted: Vec<u32>,
     /// `ln_1p(c)` for counts `c < LN1P_TABLE`.
     ln1p: [f32; LN1P_TABLE],
 }
@@ -447,6 +449,7 @@ impl Featurizer {
             text: Vec::with_capacity(256),
             numeric: Vec::with_capacity(8),
             merged: Vec::with_capacity(256),
+            sorted: Vec::with_capacity(256),
             // Count 1 has always used the constant (which `ln_1p(1)` need not
             // round to); the rest are the values `ln_1p` returns.
             ln1p: std::array::from_fn(|c| match c {
@@ -542,7 +545,7 @@ impl Featurizer {
     /// and values to `indices` and `values`. Returns the number of entries added.
     pub fn finish_row(&mut self, indices: &mut Vec<u32>, values: &mut Vec<f32>) -> usize {
         let start = indices.len();
-        self.text.sort_unstable();
+        sort_keys(&mut self.text, &mut self.sorted, self.cfg.log2_buckets + 1);
         let raw = self.cfg.raw_counts;
         let mut norm = 0.0f32;
         let t = &self.text;
@@ -612,6 +615,51 @@ impl Featurizer {
         }
         indices.len() - start
     }
+}
+
+/// Sort a row's packed keys (each below `2^key_bits`) in increasing order.
+///
+/// Rows of typical length are distributed over 64 bins by their top bits (a
+/// counting sort: the keys are hashes, so the bins are even) and finished by an
+/// insertion sort, which only has to fix the order inside each bin; other
+/// lengths use the standard unstable sort. Equal keys are equal values, so the
+/// result is the same as any other sort's.
+fn sort_keys(keys: &mut Vec<u32>, scratch: &mut Vec<u32>, key_bits: u32) {
+    const BINS: usize = 64;
+    let n = keys.len();
+    if !(24..=256).contains(&n) {
+        keys.sort_unstable();
+        return;
+    }
+    let shift = key_bits.saturating_sub(BINS.trailing_zeros());
+    let bin = |k: u32| (k >> shift) as usize & (BINS - 1);
+    let mut start = [0u32; BINS];
+    for &k in keys.iter() {
+        start[bin(k)] += 1;
+    }
+    let mut sum = 0;
+    for c in start.iter_mut() {
+        let here = *c;
+        *c = sum;
+        sum += here;
+    }
+    scratch.clear();
+    scratch.resize(n, 0);
+    for &k in keys.iter() {
+        let b = bin(k);
+        scratch[start[b] as usize] = k;
+        start[b] += 1;
+    }
+    for i in 1..n {
+        let k = scratch[i];
+        let mut j = i;
+        while j > 0 && scratch[j - 1] > k {
+            scratch[j] = scratch[j - 1];
+            j -= 1;
+        }
+        scratch[j] = k;
+    }
+    std::mem::swap(keys, scratch);
 }
 
 /// Sort by bucket, sum duplicates, drop zeros.
@@ -750,6 +798,27 @@ mod tests {
                 "{:?}",
                 String::from_utf8_lossy(t)
             );
+        }
+    }
+
+    #[test]
+    fn key_sort_matches_standard_sort() {
+        use rand::{Rng, SeedableRng};
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(5);
+        let mut scratch = Vec::new();
+        for bits in [11, 21, 29] {
+            for n in [0, 1, 23, 24, 25, 40, 100, 256, 257, 600] {
+                let mut keys: Vec<u32> =
+                    (0..n).map(|_| rng.random_range(0..1u32 << bits)).collect();
+                // Duplicates, as repeated words give.
+                for i in (0..n).step_by(7).skip(1) {
+                    keys[i] = keys[i - 1];
+                }
+                let mut want = keys.clone();
+                want.sort_unstable();
+                sort_keys(&mut keys, &mut scratch, bits);
+                assert_eq!(keys, want, "bits {bits}, n {n}");
+            }
         }
     }
 
