@@ -47,6 +47,7 @@ compile_error!(
     "tamis maps its little-endian files directly and supports little-endian targets only"
 );
 
+pub mod bench;
 pub mod calibrate;
 pub mod checkpoint;
 pub mod container;

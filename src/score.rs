@@ -208,6 +208,23 @@ pub fn score_inputs(
         .build()
         .map_err(|e| Error::Invalid(format!("cannot start threads: {e}")))?;
     let batch_len = 2 * threads.max(1);
+    let score_batch = |batch: Vec<Chunk>| -> Vec<Vec<Outcome>> {
+        pool.install(|| {
+            batch
+                .par_iter()
+                .map_init(
+                    || Worker {
+                        feat: Featurizer::new(&model.meta.features).expect("validated on load"),
+                        scratch: ParseScratch::default(),
+                        idx: Vec::new(),
+                        val: Vec::new(),
+                        scores: Vec::new(),
+                    },
+                    |w, c| score_chunk(c, spec, mode, model, &names, w),
+                )
+                .collect()
+        })
+    };
     std::thread::scope(|s| -> Result<()> {
         let (tx, rx) = sync_channel::<ReadMsg>(batch_len + 2);
         let progress = Arc::new(AtomicU64::new(0));
@@ -215,6 +232,9 @@ pub fn score_inputs(
             .name("tamis-read".into())
             .spawn_scoped(s, move || read_inputs(inputs, spec, mode, progress, tx))
             .map_err(|e| Error::Invalid(format!("cannot start a thread: {e}")))?;
+        // The sink (output, on this thread) takes the results of one batch
+        // while the pool scores the next, in input order.
+        let mut ready: Vec<Vec<Outcome>> = Vec::new();
         loop {
             let mut batch = Vec::with_capacity(batch_len);
             let mut done = false;
@@ -233,29 +253,26 @@ pub fn score_inputs(
                     }
                 }
             }
-            let outs: Vec<Vec<Outcome>> = pool.install(|| {
-                batch
-                    .par_iter()
-                    .map_init(
-                        || Worker {
-                            feat: Featurizer::new(&model.meta.features).expect("validated on load"),
-                            scratch: ParseScratch::default(),
-                            idx: Vec::new(),
-                            val: Vec::new(),
-                            scores: Vec::new(),
-                        },
-                        |w, c| score_chunk(c, spec, mode, model, &names, w),
-                    )
-                    .collect()
-            });
-            for o in outs {
-                sink(o)?;
-            }
+            let outs = std::thread::scope(|inner| -> Result<Vec<Vec<Outcome>>> {
+                let scoring = std::thread::Builder::new()
+                    .name("tamis-score".into())
+                    .spawn_scoped(inner, || score_batch(batch))
+                    .map_err(|e| Error::Invalid(format!("cannot start a thread: {e}")))?;
+                let sunk = std::mem::take(&mut ready)
+                    .into_iter()
+                    .try_for_each(&mut sink);
+                let outs = scoring
+                    .join()
+                    .map_err(|_| Error::Invalid("internal: scoring thread panicked".into()))?;
+                sunk.map(|_| outs)
+            })?;
+            ready = outs;
             if let Some(e) = failure {
+                ready.into_iter().try_for_each(&mut sink)?;
                 return Err(e);
             }
             if done {
-                return Ok(());
+                return ready.into_iter().try_for_each(&mut sink);
             }
         }
     })

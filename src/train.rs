@@ -123,6 +123,36 @@ pub struct TrainOptions {
 }
 
 impl TrainOptions {
+    /// The defaults of `tamis train` for the dataset `dir` and the model file
+    /// `model`: hinge loss, λ = 1e-5, 5 epochs, batches of 64, η₀ = 1, averaging
+    /// from the second epoch, seed 1, no class weights, no idf, every core, no
+    /// checkpoints, no progress bar.
+    pub fn defaults(dir: &Path, model: &Path) -> TrainOptions {
+        TrainOptions {
+            dir: dir.to_path_buf(),
+            model: model.to_path_buf(),
+            solver: SolverConfig {
+                lambda: 1e-5,
+                loss: Loss::Hinge,
+                batch: 64,
+                eta0: 1.0,
+                project: false,
+                average_from: 1,
+            },
+            epochs: 5,
+            seed: 1,
+            class_weight: ClassWeight::None,
+            idf: false,
+            patience: None,
+            threads: std::thread::available_parallelism().map_or(1, |n| n.get()),
+            progress: false,
+            checkpoint: None,
+            checkpoint_every: DEFAULT_CHECKPOINT_SECONDS,
+            init_from: None,
+            stop: None,
+        }
+    }
+
     /// The options that continue the run saved in a checkpoint: its settings,
     /// dataset and model; one progress bar, all cores, checkpoints every 60 s to
     /// the same file (the caller adjusts what it needs).
@@ -185,6 +215,19 @@ pub enum Outcome {
         /// Where the run stood.
         position: Position,
     },
+}
+
+impl Outcome {
+    /// The report of a finished run; an error for a run that stopped on request.
+    pub fn finished(self) -> Result<TrainReport> {
+        match self {
+            Outcome::Finished(r) => Ok(*r),
+            Outcome::Stopped { checkpoint, .. } => Err(Error::Invalid(format!(
+                "training stopped before its end; its state is in {}",
+                checkpoint.display()
+            ))),
+        }
+    }
 }
 
 /// A checkpoint to continue from.

@@ -7,9 +7,8 @@ use std::process::ExitCode;
 use anyhow::Context;
 use tamis::dataset::{self, Choices, IngestOptions};
 use tamis::input::InputSpec;
-use tamis::solver::{Loss, SolverConfig};
 use tamis::synth::{Synth, SynthConfig};
-use tamis::train::{self, ClassWeight, TrainOptions};
+use tamis::train::{self, TrainOptions};
 
 /// Options of `tamis demo`.
 #[derive(Debug, clap::Args)]
@@ -78,27 +77,9 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
         model.display()
     );
     let topts = TrainOptions {
-        dir: data.clone(),
-        model: model.clone(),
-        solver: SolverConfig {
-            lambda: 1e-5,
-            loss: Loss::Hinge,
-            batch: 64,
-            eta0: 1.0,
-            project: false,
-            average_from: 1,
-        },
-        epochs: 5,
-        seed: 1,
-        class_weight: ClassWeight::None,
-        idf: false,
-        patience: None,
         threads: opts.threads,
         progress: true,
-        checkpoint: None,
-        checkpoint_every: train::DEFAULT_CHECKPOINT_SECONDS,
-        init_from: None,
-        stop: None,
+        ..TrainOptions::defaults(&data, &model)
     };
     train::train(
         &topts,

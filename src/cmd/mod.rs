@@ -9,6 +9,7 @@ macro_rules! outln {
     }};
 }
 
+pub mod bench;
 pub mod calibrate;
 pub mod demo;
 pub mod eval;
@@ -65,6 +66,9 @@ enum Command {
     Verify(verify::Args),
     /// Run the whole job on built-in invented demo data.
     Demo(demo::Args),
+    /// Measure ingest, training and scoring on this machine, against plain
+    /// reads of the same bytes.
+    Bench(Box<bench::Args>),
 }
 
 /// Run the parsed command line.
@@ -81,6 +85,7 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::Tune(a) => tune::run(*a),
         Command::Verify(a) => verify::run(a),
         Command::Demo(a) => demo::run(a),
+        Command::Bench(a) => bench::run(*a),
     }
 }
 

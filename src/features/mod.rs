@@ -274,10 +274,75 @@ fn decode(b: &[u8]) -> (Option<char>, usize) {
     }
 }
 
+/// [`ASCII`] over all 256 byte values (bytes ≥ 0x80 are 0), so that a lookup
+/// needs no bounds check. Used only on text known to be ASCII.
+static ASCII256: [u8; 256] = {
+    let mut t = [0u8; 256];
+    let mut i = 0;
+    while i < 128 {
+        t[i] = ASCII[i];
+        i += 1;
+    }
+    t
+};
+
 /// Split `text` into lowercased tokens, calling `emit` with each token's UTF-8
 /// bytes. Returns the number of invalid UTF-8 sequences met (decoded lossily as
 /// separators). No allocation: `buf` is reused.
-pub fn tokenize(text: &[u8], buf: &mut Vec<u8>, mut emit: impl FnMut(&[u8])) -> u32 {
+///
+/// Text that is all ASCII (checked a word at a time) takes a fast path that
+/// gives exactly the same tokens as the general one.
+#[inline]
+pub fn tokenize(text: &[u8], buf: &mut Vec<u8>, emit: impl FnMut(&[u8])) -> u32 {
+    if text.is_ascii() {
+        tokenize_ascii(text, buf, emit);
+        0
+    } else {
+        tokenize_general(text, buf, emit)
+    }
+}
+
+/// The tokenizer on ASCII text: runs of ASCII letters and digits, hashed from
+/// the input when they hold no capital letter, else lowercased into `buf`;
+/// tokens longer than [`MAX_TOKEN_BYTES`] are cut into pieces of that length.
+#[inline]
+fn tokenize_ascii(text: &[u8], buf: &mut Vec<u8>, mut emit: impl FnMut(&[u8])) {
+    let n = text.len();
+    let mut i = 0;
+    loop {
+        while i < n && ASCII256[text[i] as usize] == 0 {
+            i += 1;
+        }
+        if i == n {
+            return;
+        }
+        let s = i;
+        let mut seen = 0u8;
+        while i < n {
+            let c = ASCII256[text[i] as usize];
+            if c == 0 {
+                break;
+            }
+            seen |= c;
+            i += 1;
+        }
+        let tok = &text[s..i];
+        if seen & 2 == 0 {
+            if tok.len() <= MAX_TOKEN_BYTES {
+                emit(tok);
+            } else {
+                tok.chunks(MAX_TOKEN_BYTES).for_each(&mut emit);
+            }
+        } else {
+            buf.clear();
+            buf.extend(tok.iter().map(u8::to_ascii_lowercase));
+            buf.chunks(MAX_TOKEN_BYTES).for_each(&mut emit);
+        }
+    }
+}
+
+/// The tokenizer for any bytes (see [`tokenize`]).
+fn tokenize_general(text: &[u8], buf: &mut Vec<u8>, mut emit: impl FnMut(&[u8])) -> u32 {
     let mut invalid = 0;
     buf.clear();
     let mut i = 0;
@@ -521,7 +586,14 @@ pub struct Featurizer {
     text: Vec<u32>,
     numeric: Vec<(u32, f32)>,
     merged: Vec<(u32, f32)>,
+    /// Scratch of [`sort_keys`].
+    sorted: Vec<u32>,
+    /// `ln_1p(c)` for counts `c < LN1P_TABLE`.
+    ln1p: [f32; LN1P_TABLE],
 }
+
+/// Counts whose damped value is looked up rather than computed.
+const LN1P_TABLE: usize = 64;
 
 /// Pack a hash into a text entry: bucket in the high bits, the sign in bit 0.
 #[inline]
@@ -554,6 +626,13 @@ impl Featurizer {
             text: Vec::with_capacity(256),
             numeric: Vec::with_capacity(8),
             merged: Vec::with_capacity(256),
+            sorted: Vec::with_capacity(256),
+            // Count 1 has always used the constant (which `ln_1p(1)` need not
+            // round to); the rest are the values `ln_1p` returns.
+            ln1p: std::array::from_fn(|c| match c {
+                1 => std::f32::consts::LN_2,
+                _ => (c as f32).ln_1p(),
+            }),
         })
     }
 
@@ -598,6 +677,25 @@ impl Featurizer {
             text: out,
             ..
         } = self;
+        if n == 2 && chars.is_none() && !masks.any() {
+            // The default settings (words and word pairs, no masks): the
+            // previous word's hash is all the state needed.
+            let mut prev: Option<u64> = None;
+            let invalid = tokenize(text, token, |tok| {
+                let h = xxh3_64_with_seed(tok, seed);
+                on_word(tok, h);
+                out.push(key(h, mask));
+                if let Some(p) = prev {
+                    out.push(key(ngram_hash(seed, &[p, h]), mask));
+                }
+                prev = Some(h);
+                count += 1;
+            });
+            return TextStats {
+                tokens: count as u32,
+                invalid_utf8: invalid,
+            };
+        }
         // The work per token, written once and expanded into each tokenizer's
         // closure, so the unmasked path stays one closure without a call.
         macro_rules! on_token {
@@ -653,7 +751,7 @@ impl Featurizer {
     /// and values to `indices` and `values`. Returns the number of entries added.
     pub fn finish_row(&mut self, indices: &mut Vec<u32>, values: &mut Vec<f32>) -> usize {
         let start = indices.len();
-        self.text.sort_unstable();
+        sort_keys(&mut self.text, &mut self.sorted, self.cfg.log2_buckets + 1);
         let raw = self.cfg.raw_counts;
         let mut norm = 0.0f32;
         let t = &self.text;
@@ -675,9 +773,16 @@ impl Featurizer {
             let v = match count {
                 0 => continue,
                 _ if raw => count as f32,
-                1 => std::f32::consts::LN_2,
-                -1 => -std::f32::consts::LN_2,
-                _ => (count.unsigned_abs() as f32).ln_1p().copysign(count as f32),
+                _ => {
+                    let a = count.unsigned_abs() as usize;
+                    // The same `ln_1p` values, looked up for small counts.
+                    let m = if a < LN1P_TABLE {
+                        self.ln1p[a]
+                    } else {
+                        (a as f32).ln_1p()
+                    };
+                    m.copysign(count as f32)
+                }
             };
             norm += v * v;
             out_i[k] = bucket;
@@ -716,6 +821,51 @@ impl Featurizer {
         }
         indices.len() - start
     }
+}
+
+/// Sort a row's packed keys (each below `2^key_bits`) in increasing order.
+///
+/// Rows of typical length are distributed over 64 bins by their top bits (a
+/// counting sort: the keys are hashes, so the bins are even) and finished by an
+/// insertion sort, which only has to fix the order inside each bin; other
+/// lengths use the standard unstable sort. Equal keys are equal values, so the
+/// result is the same as any other sort's.
+fn sort_keys(keys: &mut Vec<u32>, scratch: &mut Vec<u32>, key_bits: u32) {
+    const BINS: usize = 64;
+    let n = keys.len();
+    if !(24..=256).contains(&n) {
+        keys.sort_unstable();
+        return;
+    }
+    let shift = key_bits.saturating_sub(BINS.trailing_zeros());
+    let bin = |k: u32| (k >> shift) as usize & (BINS - 1);
+    let mut start = [0u32; BINS];
+    for &k in keys.iter() {
+        start[bin(k)] += 1;
+    }
+    let mut sum = 0;
+    for c in start.iter_mut() {
+        let here = *c;
+        *c = sum;
+        sum += here;
+    }
+    scratch.clear();
+    scratch.resize(n, 0);
+    for &k in keys.iter() {
+        let b = bin(k);
+        scratch[start[b] as usize] = k;
+        start[b] += 1;
+    }
+    for i in 1..n {
+        let k = scratch[i];
+        let mut j = i;
+        while j > 0 && scratch[j - 1] > k {
+            scratch[j] = scratch[j - 1];
+            j -= 1;
+        }
+        scratch[j] = k;
+    }
+    std::mem::swap(keys, scratch);
 }
 
 /// Sort by bucket, sum duplicates, drop zeros.
@@ -811,6 +961,75 @@ mod tests {
         assert_eq!(toks("İ".as_bytes()).0, ["i\u{307}"]);
     }
 
+    /// The ASCII fast path must give exactly the tokens of the general path.
+    #[test]
+    fn ascii_fast_path_matches_general_tokenizer() {
+        use rand::{Rng, SeedableRng};
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(11);
+        let alphabet = b"abcxyzABCXYZ0129 \t.,-_!'\"()/";
+        type Tokenizer = fn(&[u8], &mut Vec<u8>, &mut dyn FnMut(&[u8]));
+        let run = |f: Tokenizer, text: &[u8]| {
+            let mut out: Vec<Vec<u8>> = Vec::new();
+            let mut buf = Vec::new();
+            f(text, &mut buf, &mut |t: &[u8]| out.push(t.to_vec()));
+            out
+        };
+        let fast: Tokenizer = |t, b, e| tokenize_ascii(t, b, e);
+        let general: Tokenizer = |t, b, e| {
+            tokenize_general(t, b, e);
+        };
+        let mut texts: Vec<Vec<u8>> = vec![
+            b"".to_vec(),
+            b"Hello, WORLD! it's 2x-fast".to_vec(),
+            [b"ab".repeat(200), b"CD".repeat(100), b" x".to_vec()].concat(),
+            b"A".repeat(700),
+            b"q".repeat(513),
+        ];
+        for _ in 0..3000 {
+            let len = rng.random_range(0..120);
+            let mut t: Vec<u8> = (0..len)
+                .map(|_| alphabet[rng.random_range(0..alphabet.len())])
+                .collect();
+            if rng.random_range(0..10) == 0 {
+                let at = rng.random_range(0..=t.len());
+                let long: Vec<u8> = (0..rng.random_range(250..600))
+                    .map(|_| alphabet[rng.random_range(0..12)])
+                    .collect();
+                t.splice(at..at, long);
+            }
+            texts.push(t);
+        }
+        for t in &texts {
+            assert_eq!(
+                run(fast, t),
+                run(general, t),
+                "{:?}",
+                String::from_utf8_lossy(t)
+            );
+        }
+    }
+
+    #[test]
+    fn key_sort_matches_standard_sort() {
+        use rand::{Rng, SeedableRng};
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(5);
+        let mut scratch = Vec::new();
+        for bits in [11, 21, 29] {
+            for n in [0, 1, 23, 24, 25, 40, 100, 256, 257, 600] {
+                let mut keys: Vec<u32> =
+                    (0..n).map(|_| rng.random_range(0..1u32 << bits)).collect();
+                // Duplicates, as repeated words give.
+                for i in (0..n).step_by(7).skip(1) {
+                    keys[i] = keys[i - 1];
+                }
+                let mut want = keys.clone();
+                want.sort_unstable();
+                sort_keys(&mut keys, &mut scratch, bits);
+                assert_eq!(keys, want, "bits {bits}, n {n}");
+            }
+        }
+    }
+
     #[test]
     fn invalid_utf8_separates_and_counts() {
         let (t, bad) = toks(b"ab\xffcd\xe2\x82 ef\xc0\xafgh");
@@ -863,24 +1082,29 @@ mod tests {
 
     #[test]
     fn ngram_orders_match_definition() {
-        let mut c = cfg();
-        c.ngrams = 3;
-        c.raw_counts = true;
-        let mut f = Featurizer::new(&c).unwrap();
-        let (i, v) = row(&mut f, "a b c d");
-        let s = field_seed(7, "text");
-        let u: Vec<u64> = ["a", "b", "c", "d"]
-            .iter()
-            .map(|t| xxh3_64_with_seed(t.as_bytes(), s))
-            .collect();
-        let mut want: Vec<(u32, f32)> = u.iter().map(|&h| bucket_sign(h, f.mask)).collect();
-        // Order of equal buckets does not matter for the sums.
-        for w in u.windows(2).chain(u.windows(3)) {
-            want.push(bucket_sign(ngram_hash(s, w), f.mask));
+        // Order 2 takes a path of its own (the default settings); 3 the general one.
+        for order in [2, 3] {
+            let mut c = cfg();
+            c.ngrams = order;
+            c.raw_counts = true;
+            let mut f = Featurizer::new(&c).unwrap();
+            let (i, v) = row(&mut f, "a b c d");
+            let s = field_seed(7, "text");
+            let u: Vec<u64> = ["a", "b", "c", "d"]
+                .iter()
+                .map(|t| xxh3_64_with_seed(t.as_bytes(), s))
+                .collect();
+            let mut want: Vec<(u32, f32)> = u.iter().map(|&h| bucket_sign(h, f.mask)).collect();
+            // Order of equal buckets does not matter for the sums.
+            for n in 2..=order as usize {
+                for w in u.windows(n) {
+                    want.push(bucket_sign(ngram_hash(s, w), f.mask));
+                }
+            }
+            merge(&mut want);
+            assert_eq!(i, want.iter().map(|e| e.0).collect::<Vec<_>>());
+            assert_eq!(v, want.iter().map(|e| e.1).collect::<Vec<_>>());
         }
-        merge(&mut want);
-        assert_eq!(i, want.iter().map(|e| e.0).collect::<Vec<_>>());
-        assert_eq!(v, want.iter().map(|e| e.1).collect::<Vec<_>>());
     }
 
     #[test]

@@ -117,6 +117,12 @@ pub trait Rows: Sync {
     }
     /// Row `i`.
     fn row(&self, i: usize) -> Row<'_>;
+    /// Hint that row `i` will be read soon (start loading where it is
+    /// described); never changes a result. Does nothing unless overridden.
+    #[inline]
+    fn prefetch(&self, i: usize) {
+        let _ = i;
+    }
 }
 
 impl<B: AsRef<[u8]> + Sync> Rows for Shard<B> {
@@ -125,6 +131,13 @@ impl<B: AsRef<[u8]> + Sync> Rows for Shard<B> {
     }
     fn row(&self, i: usize) -> Row<'_> {
         Shard::row(self, i)
+    }
+    #[inline]
+    fn prefetch(&self, i: usize) {
+        if let (Some(p), Some(l)) = (self.indptr().get(i), self.labels().get(i)) {
+            prefetch(p);
+            prefetch(l);
+        }
     }
 }
 
@@ -347,6 +360,7 @@ impl Linear {
         let mask = self.v.len() - 1;
         match splits {
             None => {
+                self.prefetch_update(xs, coefs, big_b != 0.0);
                 let mut dn = 0.0;
                 for (x, &c) in xs.iter().zip(coefs) {
                     if c == 0.0 {
@@ -375,6 +389,19 @@ impl Linear {
                     .zip(self.u.par_chunks_mut(width))
                     .enumerate()
                     .map(|(q, (v, u))| {
+                        let base = q * width;
+                        for ((x, &c), sp) in xs.iter().zip(coefs).zip(splits) {
+                            if c == 0.0 {
+                                continue;
+                            }
+                            for &i in &x.indices[sp[q] as usize..sp[q + 1] as usize] {
+                                let j = (i as usize & mask).wrapping_sub(base) & (width - 1);
+                                prefetch(&v[j]);
+                                if big_b != 0.0 {
+                                    prefetch(&u[j]);
+                                }
+                            }
+                        }
                         let mut dn = 0.0;
                         for ((x, &c), sp) in xs.iter().zip(coefs).zip(splits) {
                             if c == 0.0 || sp[q] == sp[q + 1] {
@@ -467,6 +494,84 @@ impl Linear {
     /// Averaged steps taken.
     pub fn averaged_steps(&self) -> u64 {
         self.averaged
+    }
+}
+
+/// Ask the processor to start loading the cache line that holds `x` into its
+/// caches. A hint only: it never faults, writes nothing and cannot change a
+/// result. Weights are read at random positions (hashed buckets), so the loads of
+/// a whole block of rows are started before the first is needed.
+#[inline(always)]
+fn prefetch<T>(x: &T) {
+    #[cfg(target_arch = "x86_64")]
+    // SAFETY: `_mm_prefetch` is a cache hint with no memory effect; SSE is part
+    // of the x86_64 baseline, and the address comes from a live reference.
+    unsafe {
+        std::arch::x86_64::_mm_prefetch::<{ std::arch::x86_64::_MM_HINT_T0 }>(
+            x as *const T as *const i8,
+        )
+    }
+    #[cfg(not(target_arch = "x86_64"))]
+    let _ = x;
+}
+
+/// Start loading a row's indices and values (up to 32 entries each).
+#[inline(always)]
+fn prefetch_row(x: &Row<'_>) {
+    for part in [x.indices.first(), x.indices.get(16), x.indices.last()]
+        .into_iter()
+        .flatten()
+    {
+        prefetch(part);
+    }
+    for part in [x.values.first(), x.values.get(16), x.values.last()]
+        .into_iter()
+        .flatten()
+    {
+        prefetch(part);
+    }
+}
+
+/// Rows whose weights are prefetched together before their margins are summed.
+const PREFETCH_ROWS: usize = 8;
+
+impl Linear {
+    /// `w·x + b` for every row of `xs` into `out` (same values as
+    /// [`Linear::margin`]), loading the weights of a block of rows ahead of use.
+    fn margins_into(&self, xs: &[Row<'_>], idf: Option<&[f32]>, out: &mut [f64]) {
+        let mask = self.v.len() - 1;
+        // The rows themselves sit at random places of the shards.
+        for x in xs {
+            prefetch_row(x);
+        }
+        for (block, out) in xs.chunks(PREFETCH_ROWS).zip(out.chunks_mut(PREFETCH_ROWS)) {
+            for x in block {
+                for &i in x.indices {
+                    prefetch(&self.v[i as usize & mask]);
+                }
+            }
+            for (x, o) in block.iter().zip(out) {
+                *o = self.margin(x, idf);
+            }
+        }
+    }
+
+    /// Start loading the entries of `v` (and of `U` when averaging) that the
+    /// update of rows `xs` with nonzero coefficients will touch.
+    fn prefetch_update(&self, xs: &[Row<'_>], coefs: &[f64], average: bool) {
+        let mask = self.v.len() - 1;
+        for (x, &c) in xs.iter().zip(coefs) {
+            if c == 0.0 {
+                continue;
+            }
+            for &i in x.indices {
+                let j = i as usize & mask;
+                prefetch(&self.v[j]);
+                if average {
+                    prefetch(&self.u[j]);
+                }
+            }
+        }
     }
 }
 
@@ -617,6 +722,11 @@ impl Trainer {
         let idf = self.idf.as_deref();
         let weights = &self.class_weights;
         // Resolve the batch's rows once; every phase below works on the slices.
+        // Rows are drawn at random places of the shards: start loading where
+        // each is described before reading any of them.
+        for &r in batch {
+            rows.prefetch(r);
+        }
         let xs: Vec<Row<'_>> = batch.iter().map(|&r| rows.row(r)).collect();
         let tally = Tally {
             rows: xs.len() as u64,
@@ -632,28 +742,36 @@ impl Trainer {
             let dim = m.dim();
             self.margins.clear();
             self.splits.clear();
+            self.margins.resize(xs.len(), 0.0);
             if parallel {
                 let width = (dim / RANGES) as u32;
                 let dmask = dim as u32 - 1;
-                xs.par_iter()
-                    .with_min_len(32)
-                    .map(|x| {
-                        let n = x.indices.len() as u32;
-                        let mut sp = [n; RANGES + 1];
-                        sp[0] = 0;
-                        for q in 1..RANGES {
-                            let lim = q as u32 * width;
-                            // Monotone and within the row even for a damaged
-                            // shard whose indices are out of order.
-                            sp[q] = (x.indices.partition_point(|&i| (i & dmask) < lim) as u32)
-                                .max(sp[q - 1])
-                                .min(n);
+                self.splits.resize(xs.len(), [0; RANGES + 1]);
+                // Blocks of rows in parallel: each block's weights are
+                // prefetched, then its margins and slice offsets computed.
+                let block = PARALLEL_BATCH / 2;
+                self.margins
+                    .par_chunks_mut(block)
+                    .zip(self.splits.par_chunks_mut(block))
+                    .zip(xs.par_chunks(block))
+                    .for_each(|((mg, sps), rows)| {
+                        m.margins_into(rows, idf, mg);
+                        for (x, sp) in rows.iter().zip(sps) {
+                            let n = x.indices.len() as u32;
+                            *sp = [n; RANGES + 1];
+                            sp[0] = 0;
+                            for q in 1..RANGES {
+                                let lim = q as u32 * width;
+                                // Monotone and within the row even for a damaged
+                                // shard whose indices are out of order.
+                                sp[q] = (x.indices.partition_point(|&i| (i & dmask) < lim) as u32)
+                                    .max(sp[q - 1])
+                                    .min(n);
+                            }
                         }
-                        (m.margin(x, idf), sp)
-                    })
-                    .unzip_into_vecs(&mut self.margins, &mut self.splits);
+                    });
             } else {
-                self.margins.extend(xs.iter().map(|x| m.margin(x, idf)));
+                m.margins_into(&xs, idf, &mut self.margins);
             }
             let coefs = &mut self.coefs[0];
             coefs.clear();
@@ -675,14 +793,17 @@ impl Trainer {
                 .zip(self.coefs.par_iter_mut())
                 .zip(self.targets.par_iter())
                 .map(|((m, coefs), target)| {
+                    // The margins go into `coefs` first, then become coefficients.
                     coefs.clear();
+                    coefs.resize(xs.len(), 0.0);
+                    m.margins_into(xs, idf, coefs);
                     let mut loss = 0.0;
-                    for x in xs {
+                    for (x, cf) in xs.iter().zip(coefs.iter_mut()) {
                         let y = target.y(x.label);
                         let c = weights.get(x.label as usize).copied().unwrap_or(1.0);
-                        let mg = y * m.margin(x, idf);
+                        let mg = y * *cf;
                         loss += c * cfg.loss.value(mg);
-                        coefs.push(c * cfg.loss.derivative(mg) * y);
+                        *cf = c * cfg.loss.derivative(mg) * y;
                     }
                     m.step(xs, coefs, idf, eta, cfg, average, None);
                     loss

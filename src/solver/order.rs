@@ -58,6 +58,12 @@ impl<R: Rows> Rows for Group<'_, R> {
     fn row(&self, i: usize) -> Row<'_> {
         self.parts[i >> ROW_BITS].row(i & ((1usize << ROW_BITS) - 1))
     }
+    #[inline]
+    fn prefetch(&self, i: usize) {
+        if let Some(p) = self.parts.get(i >> ROW_BITS) {
+            p.prefetch(i & ((1usize << ROW_BITS) - 1));
+        }
+    }
 }
 
 /// Draws the rows of one group in interleaved random order.

@@ -1,0 +1,725 @@
+//! `tamis bench`: how fast is this machine for the whole job, and how close is
+//! each stage to what the hardware allows?
+//!
+//! One run generates an invented message stream (see [`crate::synth`]: Zipf
+//! vocabulary, class-dependent words, label noise, time-ordered drift of the
+//! spam words) of a requested size, then measures, each stage in a child
+//! process of the `tamis` executable itself:
+//!
+//! * **ingest** (6 classes) with 1 and with N threads, and the binary task
+//!   (`--positive spam`) with N threads: MB/s of input and rows/s;
+//! * **training**, binary hinge with 1 and N threads and 6-class one-vs-rest
+//!   with N threads, 2 epochs: nonzeros/s and rows/s per epoch (the solver's
+//!   own epoch timing, without validation);
+//! * **scoring** the raw input with the 6-class model, 1 and N threads, output
+//!   thrown away: MB/s;
+//! * **peak anonymous memory** (`RssAnon`) of every child, sampled from
+//!   `/proc/PID/status` every [`SAMPLE_MS`] ms. `RssAnon` has no peak counter of
+//!   its own (`VmHWM` counts mapped file pages too, which are the page cache's,
+//!   not ours), so a peak shorter than one sampling period can be missed.
+//!
+//! The limits are plain sequential reads of the same bytes, in this process:
+//! the input file (for ingest and scoring) and the shard files (for training,
+//! as time per epoch against the time to read the training shards once).
+//! Ratios are "how many times the limit's time the stage takes", so 1 would
+//! be a stage as fast as reading its data.
+//!
+//! Ingest runs with `--no-sync` so that the figure is the pipeline's, not the
+//! disk's write-back; inputs and shards are read from the page cache (each is
+//! read once before it is timed).
+//!
+//! **Checkpoints**: the 6-class training stage writes a checkpoint at each
+//! epoch end; the cost of the last one (written, synced and renamed) and of
+//! loading it back (every checksum verified) is set against a plain write +
+//! fsync and a plain read of the same number of bytes.
+
+use std::io::{Read, Write};
+use std::path::{Path, PathBuf};
+use std::process::{Command, Stdio};
+use std::time::{Duration, Instant};
+
+use serde::{Deserialize, Serialize};
+
+use crate::dataset::Manifest;
+use crate::error::{Error, IoContext, Result};
+use crate::synth::{Synth, SynthConfig};
+
+/// Sampling period of the children's `RssAnon`, in milliseconds.
+pub const SAMPLE_MS: u64 = 5;
+/// Epochs of each training stage.
+pub const EPOCHS: u32 = 2;
+
+/// What to measure.
+#[derive(Debug, Clone)]
+pub struct BenchOptions {
+    /// Bytes of generated input.
+    pub size: u64,
+    /// Threads of the parallel runs (the scaling is from 1 to this).
+    pub threads: usize,
+    /// Keep the generated input, datasets and models in this folder (created if
+    /// missing); otherwise a temporary folder is used and removed.
+    pub keep: Option<PathBuf>,
+    /// The `tamis` executable that runs the stages.
+    pub exe: PathBuf,
+    /// Seed of the generated stream.
+    pub seed: u64,
+}
+
+/// One measured stage.
+#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
+pub struct StageResult {
+    /// Stage name, e.g. `ingest`, `train-binary`, `score`.
+    pub stage: String,
+    /// Threads used.
+    pub threads: usize,
+    /// Wall-clock seconds of the stage (for training: the epoch).
+    pub seconds: f64,
+    /// Bytes processed per second (input bytes for ingest and scoring; bytes
+    /// read for the limits).
+    pub bytes_per_second: Option<f64>,
+    /// Rows per second.
+    pub rows_per_second: Option<f64>,
+    /// Nonzeros per second (training).
+    pub nnz_per_second: Option<f64>,
+    /// Epoch number, from 1 (training).
+    pub epoch: Option<u32>,
+    /// Peak anonymous resident memory of the child process, bytes (sampled).
+    pub peak_rss_anon: Option<u64>,
+    /// Stage time over the time of its limit (plain read of the same bytes).
+    pub ratio_to_limit: Option<f64>,
+}
+
+/// Speed-up from 1 to N threads of one stage.
+#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
+pub struct Scaling {
+    /// Stage name.
+    pub stage: String,
+    /// N.
+    pub threads: usize,
+    /// Throughput with N threads over throughput with 1.
+    pub speedup: f64,
+}
+
+/// Everything a bench run measured.
+#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
+pub struct BenchReport {
+    /// Input bytes generated.
+    pub input_bytes: u64,
+    /// Rows in the input.
+    pub rows: u64,
+    /// Nonzeros in the (6-class) dataset.
+    pub nnz: u64,
+    /// Bytes of all shards of the 6-class dataset.
+    pub shard_bytes: u64,
+    /// Bytes of its training shards.
+    pub train_shard_bytes: u64,
+    /// Threads of the parallel runs.
+    pub threads: usize,
+    /// Cores the machine reports.
+    pub cores: usize,
+    /// 1-minute load average when the run started (other work on the machine).
+    pub load_average: Option<f64>,
+    /// Where the files were (kept only with `--keep`).
+    pub dir: PathBuf,
+    /// The stages, in the order run.
+    pub stages: Vec<StageResult>,
+    /// Speed-ups from 1 to N threads.
+    pub scaling: Vec<Scaling>,
+}
+
+/// What a child training stage prints (one JSON object on standard output).
+#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
+pub struct TrainStageOutput {
+    /// Per epoch: seconds, rows/s, nonzeros/s of the training sweep.
+    pub epochs: Vec<(f64, f64, f64)>,
+    /// The last epoch-end checkpoint: bytes, seconds to write it (synced and
+    /// renamed), seconds to load and fully check it.
+    #[serde(default)]
+    pub checkpoint: Option<(u64, f64, f64)>,
+}
+
+/// Parse a size such as `1GB`, `250MB`, `64KiB`, `1.5GiB` or `123456` (bytes).
+pub fn parse_size(s: &str) -> std::result::Result<u64, String> {
+    let t = s.trim();
+    let split = t
+        .find(|c: char| !(c.is_ascii_digit() || c == '.'))
+        .unwrap_or(t.len());
+    let (num, unit) = t.split_at(split);
+    let x: f64 = num
+        .parse()
+        .map_err(|_| format!("expected a size such as 1GB or 250MB, got {s:?}"))?;
+    let mult: f64 = match unit.trim().to_ascii_lowercase().as_str() {
+        "" | "b" => 1.0,
+        "kb" | "k" => 1e3,
+        "mb" | "m" => 1e6,
+        "gb" | "g" => 1e9,
+        "tb" | "t" => 1e12,
+        "kib" => 1024.0,
+        "mib" => 1024.0 * 1024.0,
+        "gib" => 1024.0 * 1024.0 * 1024.0,
+        u => {
+            return Err(format!(
+                "unknown size unit {u:?} in {s:?} (use B, KB, MB, GB, KiB, MiB, GiB)"
+            ))
+        }
+    };
+    let bytes = x * mult;
+    if !(1.0..1e15).contains(&bytes) {
+        return Err(format!("size {s:?} is out of range"));
+    }
+    Ok(bytes as u64)
+}
+
+/// Read files sequentially in 1 MiB blocks; returns bytes read and seconds.
+/// Every byte is summed, so the read cannot be skipped.
+pub fn scan(paths: &[PathBuf]) -> Result<(u64, f64, u64)> {
+    let mut buf = vec![0u8; 1 << 20];
+    let start = Instant::now();
+    let (mut total, mut sum) = (0u64, 0u64);
+    for p in paths {
+        let mut f = std::fs::File::open(p).at(p)?;
+        loop {
+            let n = f.read(&mut buf).at(p)?;
+            if n == 0 {
+                break;
+            }
+            total += n as u64;
+            // Eight bytes at a time: about as fast as the read itself.
+            for c in buf[..n].chunks(8) {
+                let mut w = [0u8; 8];
+                w[..c.len()].copy_from_slice(c);
+                sum = sum.wrapping_add(u64::from_le_bytes(w));
+            }
+        }
+    }
+    Ok((total, start.elapsed().as_secs_f64(), sum))
+}
+
+/// Run `exe args` with standard output captured (or thrown away), sampling its
+/// `RssAnon`. Returns (seconds, peak RssAnon, standard output).
+fn run_child(exe: &Path, args: &[String], capture: bool) -> Result<(f64, Option<u64>, Vec<u8>)> {
+    let start = Instant::now();
+    let mut child = Command::new(exe)
+        .args(args)
+        .stdin(Stdio::null())
+        .stdout(if capture {
+            Stdio::piped()
+        } else {
+            Stdio::null()
+        })
+        .stderr(Stdio::piped())
+        .spawn()
+        .at(exe)?;
+    let status_path = PathBuf::from(format!("/proc/{}/status", child.id()));
+    // Drain the pipes on threads of their own, so a child never blocks on them.
+    let mut out_pipe = child.stdout.take();
+    let mut err_pipe = child.stderr.take();
+    let out_reader = std::thread::spawn(move || {
+        let mut v = Vec::new();
+        if let Some(p) = out_pipe.as_mut() {
+            let _ = p.read_to_end(&mut v);
+        }
+        v
+    });
+    let err_reader = std::thread::spawn(move || {
+        let mut v = Vec::new();
+        if let Some(p) = err_pipe.as_mut() {
+            let _ = p.read_to_end(&mut v);
+        }
+        v
+    });
+    let mut peak: Option<u64> = None;
+    let status = loop {
+        if let Some(kb) = read_rss_anon_kb(&status_path) {
+            peak = Some(peak.map_or(kb, |p| p.max(kb)));
+        }
+        match child.try_wait().at(exe)? {
+            Some(s) => break s,
+            None => std::thread::sleep(Duration::from_millis(SAMPLE_MS)),
+        }
+    };
+    let secs = start.elapsed().as_secs_f64();
+    let out = out_reader.join().unwrap_or_default();
+    let err = err_reader.join().unwrap_or_default();
+    if !status.success() {
+        return Err(Error::Invalid(format!(
+            "bench stage `tamis {}` failed ({status}): {}",
+            args.join(" "),
+            String::from_utf8_lossy(&err).trim()
+        )));
+    }
+    Ok((secs, peak.map(|kb| kb * 1024), out))
+}
+
+fn read_rss_anon_kb(status: &Path) -> Option<u64> {
+    let s = std::fs::read_to_string(status).ok()?;
+    s.lines()
+        .find_map(|l| l.strip_prefix("RssAnon:"))
+        .and_then(|v| v.trim().trim_end_matches("kB").trim().parse().ok())
+}
+
+fn load_average() -> Option<f64> {
+    std::fs::read_to_string("/proc/loadavg")
+        .ok()?
+        .split_whitespace()
+        .next()?
+        .parse()
+        .ok()
+}
+
+/// Removes the working folder unless it is kept.
+struct Workdir {
+    path: PathBuf,
+    keep: bool,
+}
+
+impl Drop for Workdir {
+    fn drop(&mut self) {
+        if !self.keep {
+            let _ = std::fs::remove_dir_all(&self.path);
+        }
+    }
+}
+
+fn shard_files(dir: &Path, m: &Manifest, train_only: bool) -> Vec<PathBuf> {
+    m.shards
+        .iter()
+        .filter(|s| !train_only || s.split == crate::dataset::manifest::Split::Train)
+        .map(|s| dir.join(&s.file))
+        .collect()
+}
+
+fn s(x: impl ToString) -> String {
+    x.to_string()
+}
+
+/// Run the whole benchmark. `progress` receives a line as each stage starts.
+pub fn run(opts: &BenchOptions, progress: &dyn Fn(&str)) -> Result<BenchReport> {
+    if opts.threads == 0 {
+        return Err(Error::Invalid("--threads must be at least 1".into()));
+    }
+    let load = load_average();
+    let (path, keep) = match &opts.keep {
+        Some(p) => (p.clone(), true),
+        None => (
+            std::env::temp_dir().join(format!("tamis-bench-{}", std::process::id())),
+            false,
+        ),
+    };
+    if keep && path.exists() && std::fs::read_dir(&path).at(&path)?.next().is_some() {
+        return Err(Error::Invalid(format!(
+            "{}: --keep needs a new or empty folder",
+            path.display()
+        )));
+    }
+    std::fs::create_dir_all(&path).at(&path)?;
+    let work = Workdir { path, keep };
+    let dir = &work.path;
+    let input = dir.join("inbox.tsv");
+    let n = opts.threads;
+    let exe = &opts.exe;
+
+    progress(&format!(
+        "generating {} of invented messages in {}",
+        crate::util::bytes(opts.size),
+        input.display()
+    ));
+    {
+        let f = std::fs::File::create(&input).at(&input)?;
+        let mut w = std::io::BufWriter::with_capacity(1 << 20, f);
+        Synth::new(SynthConfig {
+            seed: opts.seed,
+            ..SynthConfig::default()
+        })
+        .write_bytes(opts.size, &mut w)
+        .at(&input)?;
+        w.flush().at(&input)?;
+    }
+    let mut stages = Vec::new();
+
+    // Limit 1: a plain read of the input (read once first, so both this and
+    // the stages find it in the page cache).
+    progress("reading the input (limit)");
+    scan(std::slice::from_ref(&input))?;
+    let (in_bytes, in_secs, _) = scan(std::slice::from_ref(&input))?;
+    let in_bps = in_bytes as f64 / in_secs.max(1e-9);
+    stages.push(StageResult {
+        stage: "read-input".into(),
+        threads: 1,
+        seconds: in_secs,
+        bytes_per_second: Some(in_bps),
+        rows_per_second: None,
+        nnz_per_second: None,
+        epoch: None,
+        peak_rss_anon: None,
+        ratio_to_limit: Some(1.0),
+    });
+
+    // Ingest: 6 classes with 1 and N threads, binary with N.
+    let ds = |name: &str| dir.join(name);
+    let ingest_args = |out: &Path, threads: usize, binary: bool| -> Vec<String> {
+        let mut a = vec![
+            s("ingest"),
+            input.display().to_string(),
+            s("--out"),
+            out.display().to_string(),
+            s("--threads"),
+            threads.to_string(),
+            s("--quiet"),
+            s("--no-sync"),
+        ];
+        if binary {
+            a.extend([s("--positive"), s("spam")]);
+        }
+        a
+    };
+    let mut ingest_runs = vec![(1usize, false, "ds-1")];
+    if n > 1 {
+        ingest_runs.push((n, false, "ds-n"));
+    }
+    ingest_runs.push((n, true, "ds-binary"));
+    let mut rows = 0u64;
+    let mut nnz = 0u64;
+    for (threads, binary, name) in ingest_runs {
+        let stage = if binary { "ingest-binary" } else { "ingest" };
+        progress(&format!("{stage}, {threads} thread(s)"));
+        let out = ds(name);
+        let (secs, peak, _) = run_child(exe, &ingest_args(&out, threads, binary), false)?;
+        let m = Manifest::load(&out)?;
+        rows = m.train_rows() + m.labels.iter().map(|l| l.validation_rows).sum::<u64>();
+        nnz = m.shards.iter().map(|s| s.nnz).sum();
+        stages.push(StageResult {
+            stage: stage.into(),
+            threads,
+            seconds: secs,
+            bytes_per_second: Some(in_bytes as f64 / secs),
+            rows_per_second: Some(rows as f64 / secs),
+            nnz_per_second: None,
+            epoch: None,
+            peak_rss_anon: peak,
+            ratio_to_limit: Some(secs / in_secs.max(1e-9)),
+        });
+        if name == "ds-n" {
+            // The single-thread copy must be the same dataset (same shard
+            // checksums); it is then removed to save disk.
+            let (one, many) = (Manifest::load(&ds("ds-1"))?, m);
+            let same = one.shards.len() == many.shards.len()
+                && one
+                    .shards
+                    .iter()
+                    .zip(&many.shards)
+                    .all(|(a, b)| a.file == b.file && a.checksum == b.checksum);
+            if !same {
+                return Err(Error::Invalid(
+                    "the datasets ingested with 1 and with N threads differ: please report this"
+                        .into(),
+                ));
+            }
+            std::fs::remove_dir_all(ds("ds-1")).at(ds("ds-1"))?;
+        }
+    }
+    // The 6-class dataset used from here on.
+    let multi = if n > 1 { ds("ds-n") } else { ds("ds-1") };
+    let manifest = Manifest::load(&multi)?;
+
+    // Limit 2: a plain read of the shards.
+    progress("reading the shards (limit)");
+    let all = shard_files(&multi, &manifest, false);
+    scan(&all)?;
+    let (sh_bytes, sh_secs, _) = scan(&all)?;
+    let sh_bps = sh_bytes as f64 / sh_secs.max(1e-9);
+    let train_bytes: u64 = manifest
+        .shards
+        .iter()
+        .filter(|s| s.split == crate::dataset::manifest::Split::Train)
+        .map(|s| s.bytes)
+        .sum();
+    stages.push(StageResult {
+        stage: "read-shards".into(),
+        threads: 1,
+        seconds: sh_secs,
+        bytes_per_second: Some(sh_bps),
+        rows_per_second: None,
+        nnz_per_second: None,
+        epoch: None,
+        peak_rss_anon: None,
+        ratio_to_limit: Some(1.0),
+    });
+    let train_scan_secs = train_bytes as f64 / sh_bps;
+    // The binary dataset's shards are read once too (page cache).
+    let bin_manifest = Manifest::load(&ds("ds-binary"))?;
+    scan(&shard_files(&ds("ds-binary"), &bin_manifest, false))?;
+
+    // Training.
+    let mut train_runs = vec![(1usize, "train-binary", ds("ds-binary"))];
+    if n > 1 {
+        train_runs.push((n, "train-binary", ds("ds-binary")));
+    }
+    train_runs.push((n, "train-6class", multi.clone()));
+    for (threads, stage, data) in train_runs {
+        progress(&format!("{stage}, {threads} thread(s), {EPOCHS} epochs"));
+        let model = dir.join(format!("{stage}-{threads}.tmm"));
+        let args = vec![
+            s("bench"),
+            s("--stage-train"),
+            data.display().to_string(),
+            s("--model"),
+            model.display().to_string(),
+            s("--threads"),
+            threads.to_string(),
+        ];
+        let (_, peak, out) = run_child(exe, &args, true)?;
+        let parsed: TrainStageOutput = serde_json::from_slice(&out).map_err(|e| {
+            Error::Invalid(format!(
+                "bench: the training stage printed no result ({e}): {}",
+                String::from_utf8_lossy(&out)
+            ))
+        })?;
+        if let (Some((bytes, write, load)), true) = (parsed.checkpoint, stage == "train-6class") {
+            let (w_limit, r_limit) = plain_write_read(&dir.join("plain-write.bin"), bytes)?;
+            for (name, secs, limit) in [
+                ("checkpoint-write", write, w_limit),
+                ("checkpoint-load", load, r_limit),
+            ] {
+                stages.push(StageResult {
+                    stage: name.into(),
+                    threads,
+                    seconds: secs,
+                    bytes_per_second: Some(bytes as f64 / secs.max(1e-9)),
+                    rows_per_second: None,
+                    nnz_per_second: None,
+                    epoch: None,
+                    peak_rss_anon: None,
+                    ratio_to_limit: Some(secs / limit.max(1e-9)),
+                });
+            }
+        }
+        for (i, &(secs, rps, nps)) in parsed.epochs.iter().enumerate() {
+            stages.push(StageResult {
+                stage: stage.into(),
+                threads,
+                seconds: secs,
+                bytes_per_second: None,
+                rows_per_second: Some(rps),
+                nnz_per_second: Some(nps),
+                epoch: Some(i as u32 + 1),
+                peak_rss_anon: peak,
+                ratio_to_limit: Some(secs / train_scan_secs.max(1e-9)),
+            });
+        }
+    }
+    // Scoring the raw input with the 6-class model.
+    let model = dir.join(format!("train-6class-{n}.tmm"));
+    let mut score_threads = vec![1usize];
+    if n > 1 {
+        score_threads.push(n);
+    }
+    for threads in score_threads {
+        progress(&format!("score, {threads} thread(s)"));
+        let args = vec![
+            s("score"),
+            model.display().to_string(),
+            input.display().to_string(),
+            s("--threads"),
+            threads.to_string(),
+            s("--quiet"),
+        ];
+        let (secs, peak, _) = run_child(exe, &args, false)?;
+        stages.push(StageResult {
+            stage: "score".into(),
+            threads,
+            seconds: secs,
+            bytes_per_second: Some(in_bytes as f64 / secs),
+            rows_per_second: Some(rows as f64 / secs),
+            nnz_per_second: None,
+            epoch: None,
+            peak_rss_anon: peak,
+            ratio_to_limit: Some(secs / in_secs.max(1e-9)),
+        });
+    }
+
+    let scaling = scaling_of(&stages, n);
+    Ok(BenchReport {
+        input_bytes: in_bytes,
+        rows,
+        nnz,
+        shard_bytes: sh_bytes,
+        train_shard_bytes: train_bytes,
+        threads: n,
+        cores: std::thread::available_parallelism().map_or(1, |c| c.get()),
+        load_average: load,
+        dir: work.path.clone(),
+        stages,
+        scaling,
+    })
+}
+
+/// Seconds to write `bytes` bytes to `path` and sync them, then to read them
+/// back (from the page cache); the file is removed.
+fn plain_write_read(path: &Path, bytes: u64) -> Result<(f64, f64)> {
+    let block = vec![0x5au8; 1 << 20];
+    let t = Instant::now();
+    {
+        let mut f = std::fs::File::create(path).at(path)?;
+        let mut left = bytes;
+        while left > 0 {
+            let n = left.min(block.len() as u64) as usize;
+            f.write_all(&block[..n]).at(path)?;
+            left -= n as u64;
+        }
+        f.sync_all().at(path)?;
+    }
+    let write = t.elapsed().as_secs_f64();
+    let t = Instant::now();
+    let mut f = std::fs::File::open(path).at(path)?;
+    let mut buf = vec![0u8; 1 << 20];
+    while f.read(&mut buf).at(path)? > 0 {}
+    let read = t.elapsed().as_secs_f64();
+    let _ = std::fs::remove_file(path);
+    Ok((write, read))
+}
+
+/// Speed-ups from 1 to `n` threads for every stage measured at both (training:
+/// the last epoch).
+fn scaling_of(stages: &[StageResult], n: usize) -> Vec<Scaling> {
+    if n <= 1 {
+        return Vec::new();
+    }
+    let speed = |st: &StageResult| {
+        st.nnz_per_second
+            .or(st.bytes_per_second)
+            .unwrap_or(1.0 / st.seconds.max(1e-9))
+    };
+    let last = |name: &str, t: usize| {
+        stages
+            .iter()
+            .rev()
+            .find(|s| s.stage == name && s.threads == t)
+    };
+    let mut names: Vec<&str> = stages.iter().map(|s| s.stage.as_str()).collect();
+    names.dedup();
+    names
+        .into_iter()
+        .filter_map(|name| {
+            let (a, b) = (last(name, 1)?, last(name, n)?);
+            Some(Scaling {
+                stage: name.into(),
+                threads: n,
+                speedup: speed(b) / speed(a),
+            })
+        })
+        .collect()
+}
+
+/// The report as a table.
+pub fn table(r: &BenchReport) -> String {
+    use crate::util::{bytes, si};
+    let mut out = String::new();
+    out.push_str(&format!(
+        "input {} ({} rows), dataset {} nonzeros in {} of shards; {} core(s), load average {} at start\n\n",
+        bytes(r.input_bytes),
+        crate::util::thousands(r.rows),
+        crate::util::thousands(r.nnz),
+        bytes(r.shard_bytes),
+        r.cores,
+        r.load_average
+            .map_or_else(|| "unknown".to_string(), |l| format!("{l:.2}")),
+    ));
+    out.push_str(&format!(
+        "{:<14} {:>3} {:>5} {:>11} {:>12} {:>12} {:>9} {:>10} {:>12}\n",
+        "stage", "thr", "epoch", "MB/s", "rows/s", "nnz/s", "secs", "x limit", "RssAnon"
+    ));
+    for st in &r.stages {
+        let opt = |x: Option<f64>| x.map_or_else(|| "-".to_string(), si);
+        out.push_str(&format!(
+            "{:<14} {:>3} {:>5} {:>11} {:>12} {:>12} {:>9.3} {:>10} {:>12}\n",
+            st.stage,
+            st.threads,
+            st.epoch.map_or_else(|| "-".to_string(), |e| e.to_string()),
+            st.bytes_per_second
+                .map_or_else(|| "-".to_string(), |b| format!("{:.1}", b / 1e6)),
+            opt(st.rows_per_second),
+            opt(st.nnz_per_second),
+            st.seconds,
+            st.ratio_to_limit
+                .map_or_else(|| "-".to_string(), |x| format!("{x:.2}")),
+            st.peak_rss_anon.map_or_else(|| "-".to_string(), bytes),
+        ));
+    }
+    if !r.scaling.is_empty() {
+        out.push_str(&format!("\nscaling from 1 to {} threads:", r.threads));
+        for sc in &r.scaling {
+            out.push_str(&format!("  {} {:.2}x", sc.stage, sc.speedup));
+        }
+        out.push('\n');
+    }
+    out.push_str(
+        "\nx limit: the stage's time over a plain sequential read of the same bytes \
+(input for ingest and score, training shards for an epoch); for checkpoint-write, \
+over a plain write and fsync of as many bytes, for checkpoint-load over reading them.\n",
+    );
+    out
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn sizes_parse() {
+        assert_eq!(parse_size("1GB"), Ok(1_000_000_000));
+        assert_eq!(parse_size("250MB"), Ok(250_000_000));
+        assert_eq!(parse_size("64KiB"), Ok(65_536));
+        assert_eq!(parse_size("1.5GiB"), Ok(1_610_612_736));
+        assert_eq!(parse_size("123456"), Ok(123_456));
+        assert_eq!(parse_size(" 2 mb "), Ok(2_000_000));
+        assert!(parse_size("GB").is_err());
+        assert!(parse_size("1XB").is_err());
+        assert!(parse_size("0").is_err());
+    }
+
+    #[test]
+    fn scan_reads_every_byte() {
+        let dir = std::env::temp_dir().join(format!("tamis-scan-test-{}", std::process::id()));
+        std::fs::create_dir_all(&dir).unwrap();
+        let p = dir.join("x");
+        let data: Vec<u8> = (0..3_000_005u32).map(|i| (i % 251) as u8).collect();
+        std::fs::write(&p, &data).unwrap();
+        let (n, _, sum) = scan(std::slice::from_ref(&p)).unwrap();
+        let want = data.chunks(8).fold(0u64, |acc, c| {
+            let mut w = [0u8; 8];
+            w[..c.len()].copy_from_slice(c);
+            acc.wrapping_add(u64::from_le_bytes(w))
+        });
+        assert_eq!((n, sum), (data.len() as u64, want));
+        std::fs::remove_dir_all(&dir).unwrap();
+    }
+
+    #[test]
+    fn scaling_pairs_last_epochs() {
+        let st = |stage: &str, threads, nnz: Option<f64>, bps: Option<f64>| StageResult {
+            stage: stage.into(),
+            threads,
+            seconds: 1.0,
+            bytes_per_second: bps,
+            rows_per_second: None,
+            nnz_per_second: nnz,
+            epoch: None,
+            peak_rss_anon: None,
+            ratio_to_limit: None,
+        };
+        let stages = vec![
+            st("ingest", 1, None, Some(100.0)),
+            st("ingest", 2, None, Some(180.0)),
+            st("train-binary", 1, Some(10.0), None),
+            st("train-binary", 1, Some(20.0), None),
+            st("train-binary", 2, Some(30.0), None),
+            st("train-6class", 2, Some(5.0), None),
+        ];
+        let sc = scaling_of(&stages, 2);
+        assert_eq!(sc.len(), 2);
+        assert_eq!((sc[0].stage.as_str(), sc[0].speedup), ("ingest", 1.8));
+        assert_eq!((sc[1].stage.as_str(), sc[1].speedup), ("train-binary", 1.5));
+        assert!(scaling_of(&stages, 1).is_empty());
+    }
+}

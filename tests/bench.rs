@@ -1,0 +1,127 @@
+//! End-to-end tests of `tamis bench` on a small generated input: the JSON
+//! report has every stage with consistent counts, the kept folder holds what the
+//! stages made, and bad options fail clearly. Speed figures are printed by the
+//! command, never asserted here (a test checks correctness, not time).
+
+mod common;
+
+use common::*;
+use serde_json::Value;
+
+fn stages<'a>(r: &'a Value, name: &str) -> Vec<&'a Value> {
+    r["stages"]
+        .as_array()
+        .expect("stages")
+        .iter()
+        .filter(|s| s["stage"] == name)
+        .collect()
+}
+
+#[test]
+fn json_report_has_every_stage_and_keeps_files() {
+    let t = tmp();
+    let keep = t.path().join("kept");
+    let out = tamis([
+        "bench",
+        "--size",
+        "300KB",
+        "--threads",
+        "2",
+        "--json",
+        "--keep",
+        s(&keep),
+    ]);
+    out.ok();
+    let r: Value = serde_json::from_str(&out.stdout).expect("one JSON object");
+    assert!(r["input_bytes"].as_u64().unwrap() >= 300_000);
+    let rows = r["rows"].as_u64().unwrap();
+    assert!(rows > 1000, "{rows}");
+    assert!(r["nnz"].as_u64().unwrap() > rows);
+    assert_eq!(r["threads"], 2);
+    // Limits, then each stage at 1 and 2 threads (binary ingest and 6-class
+    // training at 2 only); training reports both epochs.
+    for (name, want) in [
+        ("read-input", 1),
+        ("read-shards", 1),
+        ("ingest", 2),
+        ("ingest-binary", 1),
+        ("train-binary", 4),
+        ("train-6class", 2),
+        ("checkpoint-write", 1),
+        ("checkpoint-load", 1),
+        ("score", 2),
+    ] {
+        assert_eq!(stages(&r, name).len(), want, "{name}");
+    }
+    // The checkpoint of 6 models over 2^20 buckets: 16 bytes per bucket and
+    // model, so its bytes per second times its seconds is at least that.
+    for st in stages(&r, "checkpoint-write")
+        .into_iter()
+        .chain(stages(&r, "checkpoint-load"))
+    {
+        let bytes = st["bytes_per_second"].as_f64().unwrap() * st["seconds"].as_f64().unwrap();
+        assert!(bytes >= 0.99 * ((6u64 * 16) << 20) as f64, "{st}");
+        assert!(st["ratio_to_limit"].as_f64().unwrap() > 0.0);
+    }
+    for st in stages(&r, "train-binary")
+        .into_iter()
+        .chain(stages(&r, "train-6class"))
+    {
+        assert!(st["nnz_per_second"].as_f64().unwrap() > 0.0);
+        assert!(st["epoch"].as_u64().unwrap() >= 1);
+        assert!(st["ratio_to_limit"].as_f64().unwrap() > 0.0);
+    }
+    for st in stages(&r, "ingest").into_iter().chain(stages(&r, "score")) {
+        assert!(st["bytes_per_second"].as_f64().unwrap() > 0.0);
+        // Sampled from /proc while the child ran.
+        if std::path::Path::new("/proc/self/status").exists() {
+            assert!(st["peak_rss_anon"].as_u64().unwrap() > 0);
+        }
+    }
+    let scaled: Vec<&str> = r["scaling"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|s| s["stage"].as_str().unwrap())
+        .collect();
+    assert_eq!(scaled, ["ingest", "train-binary", "score"]);
+    // The stage's checkpoint is removed once measured.
+    assert!(names_in(&keep).iter().all(|n| !n.ends_with(".tmc")));
+    // The kept folder: input, the 6-class and binary datasets (the 1-thread copy,
+    // checked identical, removed) and the models.
+    let names = names_in(&keep);
+    assert!(!names.contains("plain-write.bin"));
+    for want in [
+        "inbox.tsv",
+        "ds-n",
+        "ds-binary",
+        "train-binary-1.tmm",
+        "train-6class-2.tmm",
+    ] {
+        assert!(names.contains(want), "{want} missing from {names:?}");
+    }
+    assert!(!names.contains("ds-1"));
+    let m = manifest(&keep.join("ds-n"));
+    assert_eq!(m.labels.len(), 6);
+}
+
+#[test]
+fn table_output_and_bad_options() {
+    let t = tmp();
+    let keep = t.path().join("k");
+    tamis(["bench", "--size", "100KB", "-j", "1", "--keep", s(&keep)])
+        .ok()
+        .stdout_has("x limit")
+        .stdout_has("train-6class");
+    // A kept folder must be new or empty.
+    tamis(["bench", "--size", "100KB", "-j", "1", "--keep", s(&keep)])
+        .fails()
+        .stderr_has("new or empty");
+    // A size that does not parse is a usage error (exit 2).
+    let bad = tamis(["bench", "--size", "1XB"]);
+    assert_eq!(bad.code, Some(2), "{}", bad.stderr);
+    bad.stderr_has("size unit");
+    tamis(["bench", "--size", "100KB", "-j", "0"])
+        .fails()
+        .stderr_has("at least 1");
+}
