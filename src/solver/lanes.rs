@@ -15,7 +15,7 @@
 
 use rayon::prelude::*;
 
-use super::{Loss, Rows, SolverConfig, Tally, Target, PARALLEL_BATCH, RANGES};
+use super::{slice_splits, Loss, Rows, SolverConfig, Tally, Target, PARALLEL_BATCH, RANGES};
 use crate::error::{Error, Result};
 use crate::shard::Row;
 
@@ -140,23 +140,12 @@ impl Lanes {
             let v = &self.v;
             let sc = &self.sc;
             let idf = self.idf.as_deref();
-            let width = (dim / RANGES) as u32;
-            let dmask = dim as u32 - 1;
             let one = |x: &Row<'_>, out: &mut [f64]| -> [u32; RANGES + 1] {
                 lane_margins(v, l, dim, x, idf, out);
                 for (k, m) in out.iter_mut().enumerate() {
                     *m = sc[k].s * *m + sc[k].b;
                 }
-                let len = x.indices.len() as u32;
-                let mut sp = [len; RANGES + 1];
-                sp[0] = 0;
-                for q in 1..RANGES {
-                    let lim = q as u32 * width;
-                    sp[q] = (x.indices.partition_point(|&i| (i & dmask) < lim) as u32)
-                        .max(sp[q - 1])
-                        .min(len);
-                }
-                sp
+                slice_splits(x.indices, dim)
             };
             if parallel {
                 xs.par_iter()

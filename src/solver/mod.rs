@@ -578,6 +578,26 @@ impl Linear {
 /// Slices of the dimension updated in parallel by a binary model's step (fixed,
 /// so results do not depend on the number of threads).
 pub const RANGES: usize = 4;
+
+/// Where a row's indices enter each of the [`RANGES`] equal slices of a
+/// dimension `dim` (a power of two): entry `q` is the first position whose
+/// bucket is in slice `q` or later; the last is the row's length. Monotone and
+/// within the row even for a damaged shard whose indices are out of order.
+#[inline]
+pub(crate) fn slice_splits(indices: &[u32], dim: usize) -> [u32; RANGES + 1] {
+    let width = (dim / RANGES) as u32;
+    let dmask = dim as u32 - 1;
+    let n = indices.len() as u32;
+    let mut sp = [n; RANGES + 1];
+    sp[0] = 0;
+    for q in 1..RANGES {
+        let lim = q as u32 * width;
+        sp[q] = (indices.partition_point(|&i| (i & dmask) < lim) as u32)
+            .max(sp[q - 1])
+            .min(n);
+    }
+    sp
+}
 /// Batches at least this large take the parallel path.
 pub const PARALLEL_BATCH: usize = 64;
 
@@ -744,8 +764,6 @@ impl Trainer {
             self.splits.clear();
             self.margins.resize(xs.len(), 0.0);
             if parallel {
-                let width = (dim / RANGES) as u32;
-                let dmask = dim as u32 - 1;
                 self.splits.resize(xs.len(), [0; RANGES + 1]);
                 // Blocks of rows in parallel: each block's weights are
                 // prefetched, then its margins and slice offsets computed.
@@ -757,17 +775,7 @@ impl Trainer {
                     .for_each(|((mg, sps), rows)| {
                         m.margins_into(rows, idf, mg);
                         for (x, sp) in rows.iter().zip(sps) {
-                            let n = x.indices.len() as u32;
-                            *sp = [n; RANGES + 1];
-                            sp[0] = 0;
-                            for q in 1..RANGES {
-                                let lim = q as u32 * width;
-                                // Monotone and within the row even for a damaged
-                                // shard whose indices are out of order.
-                                sp[q] = (x.indices.partition_point(|&i| (i & dmask) < lim) as u32)
-                                    .max(sp[q - 1])
-                                    .min(n);
-                            }
+                            *sp = slice_splits(x.indices, dim);
                         }
                     });
             } else {
