@@ -626,13 +626,13 @@ pub fn table(r: &BenchReport) -> String {
             .map_or_else(|| "unknown".to_string(), |l| format!("{l:.2}")),
     ));
     out.push_str(&format!(
-        "{:<14} {:>3} {:>5} {:>11} {:>12} {:>12} {:>9} {:>10} {:>12}\n",
+        "{:<16} {:>3} {:>5} {:>11} {:>12} {:>12} {:>9} {:>10} {:>12}\n",
         "stage", "thr", "epoch", "MB/s", "rows/s", "nnz/s", "secs", "x limit", "RssAnon"
     ));
     for st in &r.stages {
         let opt = |x: Option<f64>| x.map_or_else(|| "-".to_string(), si);
         out.push_str(&format!(
-            "{:<14} {:>3} {:>5} {:>11} {:>12} {:>12} {:>9.3} {:>10} {:>12}\n",
+            "{:<16} {:>3} {:>5} {:>11} {:>12} {:>12} {:>9.3} {:>10} {:>12}\n",
             st.stage,
             st.threads,
             st.epoch.map_or_else(|| "-".to_string(), |e| e.to_string()),
