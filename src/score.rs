@@ -12,7 +12,7 @@ use crate::features::Featurizer;
 use crate::input::{
     parse_chunk, read_inputs, BadReason, Chunk, InputSpec, LabelMode, ParseScratch, ReadMsg,
 };
-use crate::model::{Decision, Model, UNDECIDED};
+use crate::model::{Decision, Model, Scorer, UNDECIDED};
 use crate::shard::Row;
 
 /// The outcome of one input record.
@@ -82,6 +82,7 @@ fn score_chunk(
     chunk: &Chunk,
     spec: &InputSpec,
     mode: LabelMode,
+    scorer: &Scorer<'_>,
     model: &Model,
     names: &[String],
     w: &mut Worker,
@@ -127,7 +128,7 @@ fn score_chunk(
                 indices: idx,
                 values: val,
             };
-            model.scores(&row, scores);
+            scorer.scores(&row, scores);
             // The reported score: the binary margin, or the margin of the predicted
             // class (the highest margin when no class clears its threshold).
             let decision = model.decide(scores);
@@ -202,6 +203,7 @@ pub fn score_inputs(
 ) -> Result<()> {
     check_spec(model, spec)?;
     let names = decision_labels(model);
+    let scorer = model.scorer();
     let pool = rayon::ThreadPoolBuilder::new()
         .num_threads(threads.max(1))
         .thread_name(|i| format!("tamis-score-{i}"))
@@ -220,7 +222,7 @@ pub fn score_inputs(
                         val: Vec::new(),
                         scores: Vec::new(),
                     },
-                    |w, c| score_chunk(c, spec, mode, model, &names, w),
+                    |w, c| score_chunk(c, spec, mode, &scorer, model, &names, w),
                 )
                 .collect()
         })

@@ -687,3 +687,38 @@ fn score_applies_the_threshold_and_prints_platt_probabilities() {
     let m0 = &rep["models"][0];
     assert!(f(&m0["after"]["brier"]) <= f(&m0["before"]["brier"]) + 1e-9);
 }
+
+/// The fast scorer (class weights side by side) gives exactly the scores of the
+/// plain per-class sums, for one-vs-rest with and without idf and for a binary
+/// model, on every validation row of the training data.
+#[test]
+fn the_interleaved_scorer_equals_the_plain_sums_bit_for_bit() {
+    let t = tmp();
+    for (name, ingest_extra, train_extra) in [
+        ("ovr", &[][..], &[][..]),
+        ("ovr-idf", &[][..], &["--idf"][..]),
+        ("binary", &["--positive", "spam"][..], &[][..]),
+    ] {
+        let mut ie = vec!["--log2-buckets", "14"];
+        ie.extend_from_slice(ingest_extra);
+        let (dir, m) = synth_model(t.path(), name, 3000, 5, &ie, train_extra);
+        let model = tamis::model::Model::load(&m).unwrap();
+        let scorer = model.scorer();
+        let (mut a, mut b) = (Vec::new(), Vec::new());
+        let mut n = 0;
+        for r in rows(&dir, None) {
+            let x = tamis::shard::Row {
+                label: 0,
+                indices: &r.indices,
+                values: &r.values,
+            };
+            model.scores(&x, &mut a);
+            scorer.scores(&x, &mut b);
+            assert_eq!(a.len(), model.models());
+            let bits = |v: &[f64]| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
+            assert_eq!(bits(&a), bits(&b), "{name}");
+            n += 1;
+        }
+        assert!(n > 1000, "{name}: {n} rows");
+    }
+}

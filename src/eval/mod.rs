@@ -265,6 +265,7 @@ impl ScoredRows {
 /// Score every row of `shards` with `model`: binary if `positive` (the
 /// positive class id) is set. Order: shards in the order given, rows in order.
 pub fn score_shards(shards: &[Shard], model: &Model, positive: Option<u32>) -> ScoredRows {
+    let scorer = model.scorer();
     let parts: Vec<ScoredRows> = shards
         .par_iter()
         .flat_map_iter(pieces)
@@ -273,7 +274,7 @@ pub fn score_shards(shards: &[Shard], model: &Model, positive: Option<u32>) -> S
             let mut out = Vec::new();
             for i in a..b {
                 let x = s.row(i);
-                model.scores(&x, &mut out);
+                scorer.scores(&x, &mut out);
                 let t = match positive {
                     Some(p) => (x.label == p) as u32,
                     None => x.label,

@@ -142,6 +142,44 @@ pub struct ModelMeta {
     pub calibration: Option<Calibration>,
 }
 
+/// Scores many rows with a model. For one-vs-rest the classes' weights of a
+/// bucket are copied side by side (`w[j·M + c]`), so a nonzero costs one memory
+/// access for all `M` classes instead of one per class; the copy takes as much
+/// memory as the weights. Every class's sum runs over the row's nonzeros in the
+/// same order and precision as [`Model::scores`], so the scores are the same,
+/// bit for bit.
+pub struct Scorer<'a> {
+    model: &'a Model,
+    interleaved: Option<Vec<f32>>,
+}
+
+impl Scorer<'_> {
+    /// Scores (`w·x + b`) of a hashed row under every model.
+    pub fn scores(&self, x: &Row<'_>, out: &mut Vec<f64>) {
+        let Some(w) = &self.interleaved else {
+            return self.model.scores(x, out);
+        };
+        let model = self.model;
+        let m = model.models();
+        let mask = model.dim() - 1;
+        out.clear();
+        out.resize(m, 0.0);
+        for (&i, &v) in x.indices.iter().zip(x.values) {
+            let j = i as usize & mask;
+            let xv = match &model.idf {
+                Some(idf) => v * idf[j],
+                None => v,
+            };
+            for (o, &wc) in out.iter_mut().zip(&w[j * m..j * m + m]) {
+                *o += (wc * xv) as f64;
+            }
+        }
+        for (o, &b) in out.iter_mut().zip(&model.biases) {
+            *o += b as f64;
+        }
+    }
+}
+
 /// What the model decides for one record.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum Decision {
@@ -190,6 +228,25 @@ impl Model {
     pub fn weights_of(&self, m: usize) -> &[f32] {
         let d = self.dim();
         &self.weights[m * d..(m + 1) * d]
+    }
+
+    /// A scorer for many rows (see [`Scorer`]).
+    pub fn scorer(&self) -> Scorer<'_> {
+        let m = self.models();
+        let interleaved = (m > 1).then(|| {
+            let d = self.dim();
+            let mut w = vec![0.0f32; m * d];
+            for (c, wc) in self.weights.chunks_exact(d).enumerate() {
+                for (j, &x) in wc.iter().enumerate() {
+                    w[j * m + c] = x;
+                }
+            }
+            w
+        });
+        Scorer {
+            model: self,
+            interleaved,
+        }
     }
 
     /// Scores (`w·x + b`) of a hashed row under every model.
