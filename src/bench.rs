@@ -89,6 +89,32 @@ pub struct StageResult {
     pub ratio_to_limit: Option<f64>,
 }
 
+impl StageResult {
+    /// A stage that reads the whole input (ingest, scoring): `secs` seconds
+    /// for `bytes` bytes and `rows` rows, against `limit_secs` to read them.
+    fn over_input(
+        stage: &str,
+        threads: usize,
+        secs: f64,
+        peak: Option<u64>,
+        bytes: u64,
+        rows: u64,
+        limit_secs: f64,
+    ) -> StageResult {
+        StageResult {
+            stage: stage.into(),
+            threads,
+            seconds: secs,
+            bytes_per_second: Some(bytes as f64 / secs),
+            rows_per_second: Some(rows as f64 / secs),
+            nnz_per_second: None,
+            epoch: None,
+            peak_rss_anon: peak,
+            ratio_to_limit: Some(secs / limit_secs.max(1e-9)),
+        }
+    }
+}
+
 /// Speed-up from 1 to N threads of one stage.
 #[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
 pub struct Scaling {
@@ -388,17 +414,9 @@ pub fn run(opts: &BenchOptions, progress: &dyn Fn(&str)) -> Result<BenchReport> 
         let m = Manifest::load(&out)?;
         rows = m.train_rows() + m.labels.iter().map(|l| l.validation_rows).sum::<u64>();
         nnz = m.shards.iter().map(|s| s.nnz).sum();
-        stages.push(StageResult {
-            stage: stage.into(),
-            threads,
-            seconds: secs,
-            bytes_per_second: Some(in_bytes as f64 / secs),
-            rows_per_second: Some(rows as f64 / secs),
-            nnz_per_second: None,
-            epoch: None,
-            peak_rss_anon: peak,
-            ratio_to_limit: Some(secs / in_secs.max(1e-9)),
-        });
+        stages.push(StageResult::over_input(
+            stage, threads, secs, peak, in_bytes, rows, in_secs,
+        ));
         if name == "ds-n" {
             // The single-thread copy must be the same dataset (same shard
             // checksums); it is then removed to save disk.
@@ -525,17 +543,9 @@ pub fn run(opts: &BenchOptions, progress: &dyn Fn(&str)) -> Result<BenchReport> 
             s("--quiet"),
         ];
         let (secs, peak, _) = run_child(exe, &args, false)?;
-        stages.push(StageResult {
-            stage: "score".into(),
-            threads,
-            seconds: secs,
-            bytes_per_second: Some(in_bytes as f64 / secs),
-            rows_per_second: Some(rows as f64 / secs),
-            nnz_per_second: None,
-            epoch: None,
-            peak_rss_anon: peak,
-            ratio_to_limit: Some(secs / in_secs.max(1e-9)),
-        });
+        stages.push(StageResult::over_input(
+            "score", threads, secs, peak, in_bytes, rows, in_secs,
+        ));
     }
 
     let scaling = scaling_of(&stages, n);
