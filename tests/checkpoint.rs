@@ -400,21 +400,13 @@ fn resuming_against_another_or_changed_dataset_says_what_changed() {
         .stderr_has("hash_seed");
     // Same settings and labels (the first rows of the same stream), fewer rows:
     // the shards differ.
-    let tsv = t.path().join("more.tsv");
-    synth_tsv(&tsv, 1500, 11);
-    let third = t.path().join("third");
-    ingest(
-        &[&tsv],
-        &third,
-        &["--log2-buckets", "12", "--scatter", "11", "-q"],
-    )
-    .ok();
+    let third = dataset(t.path(), "third", 1500, &[]);
     tamis(["train", "--resume", s(&ck), s(&third)])
         .fails()
         .stderr_has("no longer matches")
         .stderr_has("shard");
-    // Data appended to the same dataset: refused, then accepted with
-    // --allow-appended.
+    // Data appended to the same dataset: refused without --allow-appended (with
+    // it, see `appended_shards_join_from_the_next_epoch`).
     let day2 = t.path().join("day2.tsv");
     synth_tsv(&day2, 800, 12);
     ingest(&[&day2], &ds, &["--append", "-q"]).ok();
