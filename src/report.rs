@@ -388,7 +388,22 @@ fn histograms_svg(inp: &ReportInput<'_>) -> Result<String> {
                         PathElement::new(vec![(x - 8, y), (x + 8, y)], colour(2).stroke_width(2))
                     });
             }
-            legend(&mut chart, SeriesLabelPosition::UpperLeft)?;
+            // The legend goes to the upper corner over the lower curves, so it
+            // hides as little of the histograms as it can.
+            let peak_over = |from: f64, to: f64| {
+                hp.iter()
+                    .chain(&hn)
+                    .filter(|p| p.0 >= from && p.0 <= to)
+                    .map(|p| p.1)
+                    .fold(0.0, f64::max)
+            };
+            let span = hi - lo;
+            let corner = if peak_over(hi - 0.4 * span, hi) < peak_over(lo, lo + 0.4 * span) {
+                SeriesLabelPosition::UpperRight
+            } else {
+                SeriesLabelPosition::UpperLeft
+            };
+            legend(&mut chart, corner)?;
         }
         Ok(())
     })
