@@ -1,5 +1,6 @@
-//! End-to-end tests of `tamis demo`: it generates the invented inbox, ingests it
-//! and prints the dataset's summary; the same seed gives the same dataset.
+//! End-to-end tests of `tamis demo`: it generates the invented inbox, ingests it,
+//! prints the dataset's summary, trains, chooses the spam operating point,
+//! evaluates with a report and scores; the same seed gives the same dataset.
 
 mod common;
 
@@ -18,7 +19,16 @@ fn demo_writes_the_inbox_and_prints_the_summary() {
         .stdout_has("2. ingesting into")
         .stdout_has("3. the dataset:")
         .stdout_has("ingested 1,500 rows")
-        .stdout_has(&format!("tamis stats {}", dir.join("dataset").display()));
+        .stdout_has(&format!("tamis stats {}", dir.join("dataset").display()))
+        .stdout_has("5. choosing the operating point")
+        .stdout_has("target: false-positive rate ≤ 0.01")
+        .stdout_has("7. scoring a few new messages");
+    // The spam threshold is stored in the model, and the report is written.
+    let meta = model_meta(&dir.join("inbox.tmm"));
+    let thresholds = meta["calibration"]["thresholds"].as_array().unwrap();
+    assert_eq!(thresholds.len(), 6);
+    let report = std::fs::read_to_string(dir.join("report.html")).unwrap();
+    assert!(report.contains("<svg"), "the report has no figure");
     // The generated inbox: 1500 lines of label<TAB>text with the six labels.
     let inbox = std::fs::read(dir.join("inbox.tsv")).unwrap();
     let counts = tsv_label_counts(&inbox);
@@ -113,4 +123,17 @@ fn output_into_a_closed_pipe_is_a_quiet_success() {
 #[test]
 fn help_explains_every_option() {
     assert_help_explains_everything(&["demo"]);
+}
+
+/// A demo too small for every class to reach the validation split still runs to
+/// the end; the operating-point step says why it was skipped.
+#[test]
+fn a_tiny_demo_skips_the_operating_point_and_finishes() {
+    let t = tmp();
+    let dir = t.path().join("demo");
+    tamis(["demo", "--rows", "50", "--dir", s(&dir), "--threads", "1"])
+        .ok()
+        .stdout_has("5. choosing the operating point")
+        .stdout_has("   skipped: ")
+        .stdout_has("7. scoring a few new messages");
 }
