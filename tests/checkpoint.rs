@@ -39,6 +39,28 @@ fn spawn(args: &[&str]) -> Child {
         .expect("run tamis")
 }
 
+/// Start `tamis train DS --model MODEL --checkpoint CK --checkpoint-every 0
+/// EXTRA...` (a checkpoint after every step, which slows the run down so that a
+/// signal arrives while it trains) and return once its first checkpoint exists.
+fn spawn_checkpointing(ds: &Path, model: &Path, ck: &Path, extra: &[&str]) -> Child {
+    let mut args = vec![
+        "train",
+        s(ds),
+        "--model",
+        s(model),
+        "--checkpoint",
+        s(ck),
+        "--checkpoint-every",
+        "0",
+    ];
+    args.extend_from_slice(extra);
+    let child = spawn(&args);
+    while !ck.exists() {
+        std::thread::sleep(Duration::from_millis(1));
+    }
+    child
+}
+
 /// Identity of the file at `p` as it is now: a rename into place gives a new inode.
 fn identity(p: &Path) -> Option<(u64, std::time::SystemTime)> {
     use std::os::unix::fs::MetadataExt;
@@ -218,18 +240,9 @@ fn sigint_and_sigterm_save_a_checkpoint_and_print_the_resume_command() {
     train(&ds, &reference, &settings).ok();
     for sig in ["-INT", "-TERM"] {
         let model = t.path().join(format!("model{sig}.tmm"));
-        let mut args = vec!["train", s(&ds), "--model", s(&model)];
-        args.extend_from_slice(&settings);
-        // A periodic checkpoint elsewhere slows the run down so that the signal
-        // arrives while it trains; the interruption itself writes to the
-        // --checkpoint file.
         let ck = t.path().join(format!("periodic{sig}.tmc"));
-        args.extend(["--checkpoint", s(&ck), "--checkpoint-every", "0"]);
-        let mut child = spawn(&args);
+        let mut child = spawn_checkpointing(&ds, &model, &ck, &settings);
         let (r, seen) = wait_for_line(&mut child, "epoch   objective");
-        while !ck.exists() {
-            std::thread::sleep(Duration::from_millis(1));
-        }
         signal(&child, sig);
         let st = child.wait().unwrap();
         let err = rest(r, seen);
@@ -306,20 +319,7 @@ fn a_second_interrupt_exits_at_once_and_leaves_the_last_checkpoint_intact() {
     train(&ds, &reference, &settings).ok();
     let model = t.path().join("m.tmm");
     let ck = t.path().join("m.tmc");
-    let mut args = vec![
-        "train",
-        s(&ds),
-        "--model",
-        s(&model),
-        "--checkpoint",
-        s(&ck),
-    ];
-    args.extend_from_slice(&settings);
-    args.extend(["--checkpoint-every", "0"]);
-    let mut child = spawn(&args);
-    while !ck.exists() {
-        std::thread::sleep(Duration::from_millis(1));
-    }
+    let mut child = spawn_checkpointing(&ds, &model, &ck, &settings);
     signal(&child, "-INT");
     signal(&child, "-INT");
     let st = child.wait().unwrap();
@@ -424,22 +424,7 @@ fn appended_shards_join_from_the_next_epoch() {
     let ds = dataset(t.path(), "ds", 3000, &[]);
     let model = t.path().join("m.tmm");
     let ck = t.path().join("m.tmc");
-    let args = [
-        "train",
-        s(&ds),
-        "--model",
-        s(&model),
-        "--checkpoint",
-        s(&ck),
-        "--epochs",
-        "3",
-        "--checkpoint-every",
-        "0",
-    ];
-    let mut child = spawn(&args);
-    while !ck.exists() {
-        std::thread::sleep(Duration::from_millis(1));
-    }
+    let mut child = spawn_checkpointing(&ds, &model, &ck, &["--epochs", "3"]);
     signal(&child, "-INT");
     assert_eq!(child.wait().unwrap().code(), Some(130));
     let before = position(&ck);
@@ -640,21 +625,7 @@ fn two_trainings_on_one_model_or_checkpoint_are_kept_apart() {
     let ds = dataset(t.path(), "ds", 3000, &[]);
     let model = t.path().join("m.tmm");
     let ck = t.path().join("m.tmc");
-    let mut first = spawn(&[
-        "train",
-        s(&ds),
-        "--model",
-        s(&model),
-        "--checkpoint",
-        s(&ck),
-        "--epochs",
-        "500",
-        "--checkpoint-every",
-        "0",
-    ]);
-    while !ck.exists() {
-        std::thread::sleep(Duration::from_millis(1));
-    }
+    let mut first = spawn_checkpointing(&ds, &model, &ck, &["--epochs", "500"]);
     train(&ds, &model, &["-q"])
         .fails()
         .stderr_has("locked by running process");

@@ -326,7 +326,6 @@ fn open(path: &Path) -> Result<Container<container::FileBytes>> {
 mod tests {
     use super::*;
     use crate::features::HASH_SCHEME;
-    use crate::solver::{Loss, SolverConfig};
 
     pub(crate) fn sample() -> Checkpoint {
         let features = FeatureConfig {
@@ -365,14 +364,11 @@ mod tests {
                     checksum: "00000000000000ff".into(),
                 }],
                 settings: TrainSettings {
-                    solver: SolverConfig {
-                        lambda: 1e-5,
-                        loss: Loss::Hinge,
-                        batch: 64,
-                        eta0: 1.0,
-                        project: false,
-                        average_from: 1,
-                    },
+                    solver: crate::train::TrainOptions::defaults(
+                        std::path::Path::new("ds"),
+                        std::path::Path::new("m.tmm"),
+                    )
+                    .solver,
                     epochs: 5,
                     seed: 9,
                     class_weights: vec![1.0, 0.1 + 0.2, 1.0 / 3.0],
