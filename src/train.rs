@@ -14,6 +14,7 @@
 //! counter continues from the steps recorded in it, so the step sizes stay as
 //! small as they had become; the average restarts with this run.
 
+use std::collections::VecDeque;
 use std::io::IsTerminal;
 use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicBool, Ordering};
@@ -31,7 +32,7 @@ use crate::eval::{evaluate, per_class, Evaluation, Weights};
 use crate::model::{EpochLog, Model, ModelMeta, TrainSettings, WarmStart};
 use crate::shard::Shard;
 use crate::solver::order::{self, Group, Interleave};
-use crate::solver::{Linear, Loss, SolverConfig, Target, Trainer};
+use crate::solver::{prefetch_row, Linear, Loss, Rows, SolverConfig, Target, Trainer};
 use crate::util;
 
 /// How example weights cᵢ are chosen.
@@ -1052,11 +1053,19 @@ impl Sweep<'_> {
     /// after `from.1` of its rows: `view` holds the group's shards, `batch` row
     /// ids in it, `taken` the rows of the group drawn so far. A batch never spans
     /// two groups. `f` returning `Ok(false)` ends the sweep early.
+    ///
+    /// Rows are drawn at random places of the shards, so the order is drawn
+    /// [`AHEAD`] batches ahead and the rows of the coming batches are loaded
+    /// into the caches while `f` works on the current one (a hint only: it
+    /// changes no result).
     pub fn run<F>(&self, from: (usize, u64), mut f: F) -> Result<()>
     where
         F: FnMut(&Group<'_, Shard>, &[usize], usize, u64) -> Result<bool>,
     {
-        let mut batch = Vec::with_capacity(self.batch);
+        // Batches drawn and not yet passed to `f`, with the group's rows taken
+        // once each is done; spare vectors are reused.
+        let mut queue: VecDeque<(Vec<usize>, u64)> = VecDeque::with_capacity(AHEAD + 1);
+        let mut spare: Vec<Vec<usize>> = Vec::new();
         let groups = order::groups(self.list.len(), self.seed, self.epoch);
         for (gi, group) in groups.iter().enumerate().skip(from.0) {
             let view = Group::new(group.iter().map(|&i| &self.shards[self.list[i]]).collect());
@@ -1065,9 +1074,32 @@ impl Sweep<'_> {
             if gi == from.0 {
                 inter.skip(from.1);
             }
-            while inter.remaining() > 0 {
-                inter.next_batch(self.batch, &mut batch);
-                if !f(&view, &batch, gi, inter.taken())? {
+            loop {
+                while queue.len() <= AHEAD && inter.remaining() > 0 {
+                    let mut b = spare
+                        .pop()
+                        .unwrap_or_else(|| Vec::with_capacity(self.batch));
+                    inter.next_batch(self.batch, &mut b);
+                    queue.push_back((b, inter.taken()));
+                }
+                let Some((batch, taken)) = queue.pop_front() else {
+                    break;
+                };
+                // Where the rows two batches on are described, and the rows
+                // of the next batch themselves.
+                if let Some((later, _)) = queue.get(1) {
+                    for &r in later {
+                        view.prefetch(r);
+                    }
+                }
+                if let Some((next, _)) = queue.front() {
+                    for &r in next {
+                        prefetch_row(&view.row(r));
+                    }
+                }
+                let go_on = f(&view, &batch, gi, taken)?;
+                spare.push(batch);
+                if !go_on {
                     return Ok(());
                 }
             }
@@ -1075,6 +1107,9 @@ impl Sweep<'_> {
         Ok(())
     }
 }
+
+/// Batches an epoch's order is drawn ahead of the one being trained on.
+const AHEAD: usize = 2;
 
 /// The validation split and what scoring it needs.
 pub(crate) struct Validation<'a> {

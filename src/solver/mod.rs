@@ -36,6 +36,8 @@
 pub mod lanes;
 pub mod order;
 
+use std::time::Instant;
+
 use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
 
@@ -338,6 +340,8 @@ impl Linear {
     /// the average. With `splits` (per row, the offsets where its indices enter
     /// each of [`RANGES`] equal slices of the dimension), the slices are updated
     /// in parallel; the result does not depend on the number of threads.
+    /// `on_pool` says whether the slices run on the rayon pool or one after
+    /// the other on this thread: the same numbers either way.
     #[allow(clippy::too_many_arguments)]
     fn step(
         &mut self,
@@ -348,6 +352,7 @@ impl Linear {
         cfg: &SolverConfig,
         average: bool,
         splits: Option<&[[u32; RANGES + 1]]>,
+        on_pool: bool,
     ) {
         let k = xs.len() as f64;
         self.s *= 1.0 - eta * cfg.lambda;
@@ -383,46 +388,63 @@ impl Linear {
             }
             Some(splits) => {
                 let width = self.v.len() / RANGES;
-                let parts: Vec<f64> = self
-                    .v
-                    .par_chunks_mut(width)
-                    .zip(self.u.par_chunks_mut(width))
-                    .enumerate()
-                    .map(|(q, (v, u))| {
-                        let base = q * width;
-                        for ((x, &c), sp) in xs.iter().zip(coefs).zip(splits) {
-                            if c == 0.0 {
-                                continue;
-                            }
-                            for &i in &x.indices[sp[q] as usize..sp[q + 1] as usize] {
-                                let j = (i as usize & mask).wrapping_sub(base) & (width - 1);
-                                prefetch(&v[j]);
-                                if big_b != 0.0 {
-                                    prefetch(&u[j]);
-                                }
+                let slice = |(q, (v, u)): (usize, (&mut [f64], &mut [f64]))| {
+                    let base = q * width;
+                    for ((x, &c), sp) in xs.iter().zip(coefs).zip(splits) {
+                        if c == 0.0 {
+                            continue;
+                        }
+                        for &i in &x.indices[sp[q] as usize..sp[q + 1] as usize] {
+                            let j = (i as usize & mask).wrapping_sub(base) & (width - 1);
+                            prefetch(&v[j]);
+                            if big_b != 0.0 {
+                                prefetch(&u[j]);
                             }
                         }
-                        let mut dn = 0.0;
-                        for ((x, &c), sp) in xs.iter().zip(coefs).zip(splits) {
-                            if c == 0.0 || sp[q] == sp[q + 1] {
-                                continue;
-                            }
-                            dn += apply(
-                                v,
-                                u,
-                                mask,
-                                q * width,
-                                width - 1,
-                                x,
-                                sp[q] as usize..sp[q + 1] as usize,
-                                -scale * c,
-                                big_b,
-                                idf,
-                            );
+                    }
+                    let mut dn = 0.0;
+                    for ((x, &c), sp) in xs.iter().zip(coefs).zip(splits) {
+                        if c == 0.0 || sp[q] == sp[q + 1] {
+                            continue;
                         }
-                        dn
-                    })
-                    .collect();
+                        dn += apply(
+                            v,
+                            u,
+                            mask,
+                            q * width,
+                            width - 1,
+                            x,
+                            sp[q] as usize..sp[q + 1] as usize,
+                            -scale * c,
+                            big_b,
+                            idf,
+                        );
+                    }
+                    dn
+                };
+                let parts: [f64; RANGES] = if on_pool {
+                    let mut parts = [0.0; RANGES];
+                    let got: Vec<f64> = self
+                        .v
+                        .par_chunks_mut(width)
+                        .zip(self.u.par_chunks_mut(width))
+                        .enumerate()
+                        .map(slice)
+                        .collect();
+                    parts.copy_from_slice(&got);
+                    parts
+                } else {
+                    let mut parts = [0.0; RANGES];
+                    for (p, vu) in parts.iter_mut().zip(
+                        self.v
+                            .chunks_mut(width)
+                            .zip(self.u.chunks_mut(width))
+                            .enumerate(),
+                    ) {
+                        *p = slice(vu);
+                    }
+                    parts
+                };
                 self.vnorm2 += parts.iter().sum::<f64>();
             }
         }
@@ -517,7 +539,7 @@ fn prefetch<T>(x: &T) {
 
 /// Start loading a row's indices and values (up to 32 entries each).
 #[inline(always)]
-fn prefetch_row(x: &Row<'_>) {
+pub(crate) fn prefetch_row(x: &Row<'_>) {
     for part in [x.indices.first(), x.indices.get(16), x.indices.last()]
         .into_iter()
         .flatten()
@@ -661,6 +683,65 @@ impl Target {
     }
 }
 
+/// Decides, by measuring, whether a binary model's steps run their parallel
+/// parts (margins by blocks of rows, the update by slices of the dimension) on
+/// the rayon pool or one after the other on the calling thread. Both compute
+/// the same numbers in the same order, so the choice changes speed only.
+///
+/// A step is a few microseconds of memory-bound work; whether splitting it
+/// between cores pays depends on the machine (on some virtual machines two
+/// threads reading memory at random go barely faster than one, and the
+/// hand-over costs more than it saves). So every [`Chooser::EVERY`] steps both
+/// ways are timed on alternating runs of [`Chooser::TRIAL`] steps, and the
+/// faster per nonzero is used until the next trial.
+#[derive(Debug, Default)]
+struct Chooser {
+    /// Steps recorded so far.
+    steps: u64,
+    /// Nanoseconds and nonzeros of the current trial, per way (pool, thread).
+    trial: [(u128, u64); 2],
+    /// The way chosen by the last trial.
+    pool: bool,
+}
+
+impl Chooser {
+    /// Steps per timed run of one way.
+    const TRIAL: u64 = 128;
+    /// Runs in a trial (alternating ways).
+    const RUNS: u64 = 6;
+    /// Steps from one trial to the next.
+    const EVERY: u64 = 20_000;
+
+    /// Whether the next step should use the pool.
+    fn on_pool(&self) -> bool {
+        if rayon::current_num_threads() < 2 {
+            return false;
+        }
+        let at = self.steps % Self::EVERY;
+        if at < Self::TRIAL * Self::RUNS {
+            (at / Self::TRIAL) % 2 == 0
+        } else {
+            self.pool
+        }
+    }
+
+    /// Record a step that took `took` over `nnz` nonzeros.
+    fn record(&mut self, pool: bool, took: std::time::Duration, nnz: u64) {
+        let at = self.steps % Self::EVERY;
+        if at < Self::TRIAL * Self::RUNS {
+            let t = &mut self.trial[usize::from(!pool)];
+            t.0 += took.as_nanos();
+            t.1 += nnz;
+            if at + 1 == Self::TRIAL * Self::RUNS {
+                let per = |(ns, nnz): (u128, u64)| ns as f64 / nnz.max(1) as f64;
+                self.pool = per(self.trial[0]) < per(self.trial[1]);
+                self.trial = [(0, 0); 2];
+            }
+        }
+        self.steps += 1;
+    }
+}
+
 /// Training state of all models of a task (one for binary, one per class for
 /// one-vs-rest), sharing one read of each row.
 pub struct Trainer {
@@ -677,6 +758,7 @@ pub struct Trainer {
     coefs: Vec<Vec<f64>>,
     margins: Vec<f64>,
     splits: Vec<[u32; RANGES + 1]>,
+    chooser: Chooser,
 }
 
 /// Sums gathered while training on a batch or evaluating a set.
@@ -715,6 +797,7 @@ impl Trainer {
             idf,
             margins: Vec::new(),
             splits: Vec::new(),
+            chooser: Chooser::default(),
         })
     }
 
@@ -763,21 +846,33 @@ impl Trainer {
             self.margins.clear();
             self.splits.clear();
             self.margins.resize(xs.len(), 0.0);
+            let on_pool = parallel && self.chooser.on_pool();
+            let timer = parallel.then(Instant::now);
             if parallel {
                 self.splits.resize(xs.len(), [0; RANGES + 1]);
-                // Blocks of rows in parallel: each block's weights are
-                // prefetched, then its margins and slice offsets computed.
+                // Blocks of rows: each block's weights are prefetched, then its
+                // margins and slice offsets computed.
                 let block = PARALLEL_BATCH / 2;
-                self.margins
-                    .par_chunks_mut(block)
-                    .zip(self.splits.par_chunks_mut(block))
-                    .zip(xs.par_chunks(block))
-                    .for_each(|((mg, sps), rows)| {
+                let margins =
+                    |((mg, sps), rows): ((&mut [f64], &mut [[u32; RANGES + 1]]), &[Row<'_>])| {
                         m.margins_into(rows, idf, mg);
                         for (x, sp) in rows.iter().zip(sps) {
                             *sp = slice_splits(x.indices, dim);
                         }
-                    });
+                    };
+                if on_pool {
+                    self.margins
+                        .par_chunks_mut(block)
+                        .zip(self.splits.par_chunks_mut(block))
+                        .zip(xs.par_chunks(block))
+                        .for_each(margins);
+                } else {
+                    self.margins
+                        .chunks_mut(block)
+                        .zip(self.splits.chunks_mut(block))
+                        .zip(xs.chunks(block))
+                        .for_each(margins);
+                }
             } else {
                 m.margins_into(&xs, idf, &mut self.margins);
             }
@@ -791,7 +886,10 @@ impl Trainer {
                 coefs.push(c * cfg.loss.derivative(y * mg) * y);
             }
             let splits = parallel.then_some(&self.splits[..]);
-            self.models[0].step(&xs, coefs, idf, eta, cfg, average, splits);
+            self.models[0].step(&xs, coefs, idf, eta, cfg, average, splits, on_pool);
+            if let Some(t) = timer {
+                self.chooser.record(on_pool, t.elapsed(), tally.nnz);
+            }
             vec![loss]
         } else {
             // One-vs-rest: models in parallel, each over the whole batch.
@@ -813,7 +911,7 @@ impl Trainer {
                         loss += c * cfg.loss.value(mg);
                         *cf = c * cfg.loss.derivative(mg) * y;
                     }
-                    m.step(xs, coefs, idf, eta, cfg, average, None);
+                    m.step(xs, coefs, idf, eta, cfg, average, None, false);
                     loss
                 })
                 .collect()
