@@ -1125,6 +1125,48 @@ mod tests {
         }
     }
 
+    /// A binary model's steps give the same bits whether their blocks and
+    /// slices run on the pool or on the calling thread: a run on two threads
+    /// whose first trial alternates both ways (steps 0–127 on the pool, 128–255
+    /// on the thread, ...) equals a run on one thread, which never uses the pool.
+    #[test]
+    fn pool_and_thread_steps_agree() {
+        use rand::{Rng, SeedableRng};
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(11);
+        let dim = 1024;
+        let mut rows = MemRows::new();
+        for _ in 0..6000 {
+            let mut idx: Vec<u32> = (0..12).map(|_| rng.random_range(0..dim as u32)).collect();
+            idx.sort();
+            idx.dedup();
+            let val: Vec<f32> = idx.iter().map(|_| rng.random_range(-1.0..1.0)).collect();
+            rows.push(rng.random_range(0..2), &idx, &val);
+        }
+        let run = |threads: usize| {
+            let pool = rayon::ThreadPoolBuilder::new()
+                .num_threads(threads)
+                .build()
+                .unwrap();
+            pool.install(|| {
+                let mut tr =
+                    Trainer::new(dim, vec![Target::Class(1)], vec![], cfg(1e-4, 64), None).unwrap();
+                let order: Vec<usize> = (0..rows.len()).collect();
+                for epoch in 0..4 {
+                    for b in order.chunks(64) {
+                        tr.step(&rows, b, epoch >= 1);
+                    }
+                }
+                assert!(tr.t > 2 * Chooser::TRIAL);
+                let (w, b) = tr.models[0].averaged();
+                (
+                    w.iter().map(|x| x.to_bits()).collect::<Vec<_>>(),
+                    b.to_bits(),
+                )
+            })
+        };
+        assert_eq!(run(1), run(2));
+    }
+
     #[test]
     fn bad_settings_are_refused() {
         assert!(cfg(0.0, 1).validate().is_err());
