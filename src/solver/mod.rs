@@ -683,6 +683,9 @@ impl Target {
     }
 }
 
+/// A block of a binary step's margins and slice offsets, written together.
+type MarginBlock<'a> = (&'a mut [f64], &'a mut [[u32; RANGES + 1]]);
+
 /// Decides, by measuring, whether a binary model's steps run their parallel
 /// parts (margins by blocks of rows, the update by slices of the dimension) on
 /// the rayon pool or one after the other on the calling thread. Both compute
@@ -853,13 +856,12 @@ impl Trainer {
                 // Blocks of rows: each block's weights are prefetched, then its
                 // margins and slice offsets computed.
                 let block = PARALLEL_BATCH / 2;
-                let margins =
-                    |((mg, sps), rows): ((&mut [f64], &mut [[u32; RANGES + 1]]), &[Row<'_>])| {
-                        m.margins_into(rows, idf, mg);
-                        for (x, sp) in rows.iter().zip(sps) {
-                            *sp = slice_splits(x.indices, dim);
-                        }
-                    };
+                let margins = |((mg, sps), rows): (MarginBlock<'_>, &[Row<'_>])| {
+                    m.margins_into(rows, idf, mg);
+                    for (x, sp) in rows.iter().zip(sps) {
+                        *sp = slice_splits(x.indices, dim);
+                    }
+                };
                 if on_pool {
                     self.margins
                         .par_chunks_mut(block)
