@@ -463,6 +463,27 @@ pub fn run(opts: &BenchOptions, progress: &dyn Fn(&str)) -> Result<BenchReport> 
         peak_rss_anon: None,
         ratio_to_limit: Some(1.0),
     });
+    // Limit 3: random reads of a weight-sized table, 1 and n threads, each on
+    // its own part: how far memory-latency-bound work (a training step) can
+    // scale on this machine at best.
+    progress("random reads of a weight-sized table (limit)");
+    for t in [1, n] {
+        if t == n && n == 1 {
+            break;
+        }
+        let (secs, reads) = random_reads(t, n);
+        stages.push(StageResult {
+            stage: "random-reads".into(),
+            threads: t,
+            seconds: secs,
+            bytes_per_second: None,
+            rows_per_second: None,
+            nnz_per_second: Some(reads as f64 / secs.max(1e-9)),
+            epoch: None,
+            peak_rss_anon: None,
+            ratio_to_limit: None,
+        });
+    }
     let train_scan_secs = train_bytes as f64 / sh_bps;
     // The binary dataset's shards are read once too (page cache).
     let bin_manifest = Manifest::load(&ds("ds-binary"))?;
@@ -562,6 +583,58 @@ pub fn run(opts: &BenchOptions, progress: &dyn Fn(&str)) -> Result<BenchReport> 
         stages,
         scaling,
     })
+}
+
+/// Words of the table [`random_reads`] reads: 16 MiB, a binary model's `v`
+/// and `U` at the default 2^20 buckets.
+const TABLE_WORDS: usize = 1 << 21;
+/// Reads per part of the table in [`random_reads`].
+const READS_PER_PART: usize = 1 << 26;
+
+/// The table of [`TABLE_WORDS`] words is cut into `parts` parts; `threads`
+/// threads (dividing `parts`) take the parts in turn and make
+/// [`READS_PER_PART`] reads at random places of each (drawn beforehand).
+/// Returns the seconds and the reads made. Every run reads parts of the same
+/// size, so 1 thread against `parts` threads compares the same work and shows
+/// how memory-latency-bound work scales here, not a cache-size effect. The sums
+/// are kept so the reads cannot be left out by the compiler.
+fn random_reads(threads: usize, parts: usize) -> (f64, u64) {
+    let part = TABLE_WORDS / parts;
+    let table: Vec<u64> = (0..TABLE_WORDS as u64).collect();
+    let mut x = 0x9e37_79b9_7f4a_7c15u64;
+    let places: Vec<u32> = (0..1 << 20)
+        .map(|_| {
+            x ^= x << 13;
+            x ^= x >> 7;
+            x ^= x << 17;
+            (x % part as u64) as u32
+        })
+        .collect();
+    let read = |mine: &[u64]| {
+        let mut sum = 0u64;
+        for _ in 0..READS_PER_PART / places.len() {
+            for &p in &places {
+                sum = sum.wrapping_add(mine[p as usize]);
+            }
+        }
+        sum
+    };
+    let per_thread = parts / threads;
+    let t = Instant::now();
+    let sums: u64 = std::thread::scope(|scope| {
+        let handles: Vec<_> = table
+            .chunks(part * per_thread)
+            .take(threads)
+            .map(|mine| scope.spawn(move || mine.chunks(part).map(read).fold(0, u64::wrapping_add)))
+            .collect();
+        handles
+            .into_iter()
+            .map(|h| h.join().unwrap_or(0))
+            .fold(0, u64::wrapping_add)
+    });
+    let secs = t.elapsed().as_secs_f64();
+    std::hint::black_box(sums);
+    (secs, (READS_PER_PART * per_thread * threads) as u64)
 }
 
 /// Seconds to write `bytes` bytes to `path` and sync them, then to read them
@@ -666,7 +739,11 @@ pub fn table(r: &BenchReport) -> String {
     out.push_str(
         "\nx limit: the stage's time over a plain sequential read of the same bytes \
 (input for ingest and score, training shards for an epoch); for checkpoint-write, \
-over a plain write and fsync of as many bytes, for checkpoint-load over reading them.\n",
+over a plain write and fsync of as many bytes, for checkpoint-load over reading them.\n\
+random-reads: 8-byte reads at random places of a 16 MiB table (a binary model's weights \
+and average) cut into one part per thread of the parallel run, the parts read in turn \
+with 1 thread; its scaling is about the most that memory-bound training can gain from \
+more threads on this machine.\n",
     );
     out
 }
