@@ -21,6 +21,8 @@ use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::Arc;
 use std::time::{Duration, Instant};
 
+use rayon::prelude::*;
+
 use crate::checkpoint::{
     Checkpoint, CheckpointMeta, EarlyStop, EpochSums, Position, ShardRef, WriteCost,
 };
@@ -350,8 +352,10 @@ pub(crate) fn open_shards(
     entries: &[&ShardEntry],
     n_labels: u32,
 ) -> Result<Vec<Shard>> {
-    entries
-        .iter()
+    // Checked on the pool's threads (the checksums are most of the start-up
+    // time); the first failure in list order is the one reported.
+    let opened: Vec<Result<Shard>> = entries
+        .par_iter()
         .map(|e| {
             let s = dataset::open_shard(dir, e)?;
             if s.cols() != m.features.buckets() {
@@ -363,7 +367,8 @@ pub(crate) fn open_shards(
             s.verify(Some(n_labels))?;
             Ok(s)
         })
-        .collect()
+        .collect();
+    opened.into_iter().collect()
 }
 
 /// Train a model on the dataset in `opts.dir` and write it to `opts.model`.
