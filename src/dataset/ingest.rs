@@ -506,8 +506,18 @@ fn process(
             feat.finish_row(&mut out.indices, &mut out.values);
             out.row_ends.push(out.indices.len() as u32);
             let name = f.label.as_deref().unwrap_or("");
-            let id = match local.get(name) {
-                Some(&id) => id,
+            // A few labels are found faster by a look along the list than by
+            // hashing the name.
+            let known = if out.label_names.len() <= 16 {
+                out.label_names
+                    .iter()
+                    .position(|n| n == name)
+                    .map(|i| i as u32)
+            } else {
+                local.get(name).copied()
+            };
+            let id = match known {
+                Some(id) => id,
                 None => {
                     let id = out.label_names.len() as u32;
                     out.label_names.push(name.to_string());

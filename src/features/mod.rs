@@ -724,12 +724,27 @@ pub struct Featurizer {
     merged: Vec<(u32, f32)>,
     /// Scratch of [`sort_keys`].
     sorted: Vec<u32>,
-    /// `ln_1p(c)` for counts `c < LN1P_TABLE`.
-    ln1p: [f32; LN1P_TABLE],
+    /// Buckets and values of the row being finished.
+    run_buckets: Vec<u32>,
+    run_values: Vec<f32>,
+    /// `sign(c)·ln_1p(|c|)` for counts `|c| < LN1P_TABLE`, at `c + LN1P_TABLE`.
+    ln1p: [f32; 2 * LN1P_TABLE],
 }
 
 /// Counts whose damped value is looked up rather than computed.
 const LN1P_TABLE: usize = 64;
+
+/// The damped value of a nonzero count: `sign(c)·ln_1p(|c|)`, where count 1
+/// has always used the constant `ln 2` (which `ln_1p(1)` need not round to).
+fn damped(c: i32) -> f32 {
+    let a = c.unsigned_abs();
+    let m = if a == 1 {
+        std::f32::consts::LN_2
+    } else {
+        (a as f32).ln_1p()
+    };
+    m.copysign(c as f32)
+}
 
 /// Pack a hash into a text entry: bucket in the high bits, the sign in bit 0.
 #[inline]
@@ -763,11 +778,11 @@ impl Featurizer {
             numeric: Vec::with_capacity(8),
             merged: Vec::with_capacity(256),
             sorted: Vec::with_capacity(256),
-            // Count 1 has always used the constant (which `ln_1p(1)` need not
-            // round to); the rest are the values `ln_1p` returns.
-            ln1p: std::array::from_fn(|c| match c {
-                1 => std::f32::consts::LN_2,
-                _ => (c as f32).ln_1p(),
+            run_buckets: Vec::with_capacity(256),
+            run_values: Vec::with_capacity(256),
+            ln1p: std::array::from_fn(|i| match i as i32 - LN1P_TABLE as i32 {
+                0 => 0.0,
+                c => damped(c),
             }),
         })
     }
@@ -889,44 +904,42 @@ impl Featurizer {
         let start = indices.len();
         sort_keys(&mut self.text, &mut self.sorted, self.cfg.log2_buckets + 1);
         let raw = self.cfg.raw_counts;
-        let mut norm = 0.0f32;
         let t = &self.text;
-        // Write through plain slices with a local length: pushing through
-        // `&mut Vec` reloads and stores the length for every entry.
-        indices.resize(start + t.len(), 0);
-        values.resize(start + t.len(), 0.0);
-        let (out_i, out_v) = (&mut indices[start..], &mut values[start..]);
-        let mut k = 0;
+        let n = t.len();
+        // Scratch only grows, so it is not cleared row after row.
+        if self.run_buckets.len() < n {
+            self.run_buckets.resize(n, 0);
+            self.run_values.resize(n, 0.0);
+        }
+        let rb = &mut self.run_buckets[..n];
+        let rv = &mut self.run_values[..n];
+        let mut norm = 0.0f32;
+        let mut w = 0;
         let mut i = 0;
-        while i < t.len() {
+        while i < n {
             let bucket = t[i] >> 1;
             let mut count = 1 - 2 * (t[i] & 1) as i32;
             i += 1;
-            while i < t.len() && t[i] >> 1 == bucket {
+            while i < n && t[i] >> 1 == bucket {
                 count += 1 - 2 * (t[i] & 1) as i32;
                 i += 1;
             }
-            let v = match count {
-                0 => continue,
-                _ if raw => count as f32,
-                _ => {
-                    let a = count.unsigned_abs() as usize;
-                    // The same `ln_1p` values, looked up for small counts.
-                    let m = if a < LN1P_TABLE {
-                        self.ln1p[a]
-                    } else {
-                        (a as f32).ln_1p()
-                    };
-                    m.copysign(count as f32)
-                }
+            // Damp, drop the counts that cancelled (a value 0 is overwritten by
+            // the next bucket), and sum the squares.
+            let v = if raw {
+                count as f32
+            } else if count.unsigned_abs() < LN1P_TABLE as u32 {
+                self.ln1p[(count + LN1P_TABLE as i32) as usize]
+            } else {
+                damped(count)
             };
             norm += v * v;
-            out_i[k] = bucket;
-            out_v[k] = v;
-            k += 1;
+            rb[w] = bucket;
+            rv[w] = v;
+            w += (count != 0) as usize;
         }
-        indices.truncate(start + k);
-        values.truncate(start + k);
+        indices.extend_from_slice(&rb[..w]);
+        values.extend_from_slice(&rv[..w]);
         if !raw && norm > 0.0 {
             let inv = 1.0 / norm.sqrt();
             for v in &mut values[start..] {
