@@ -31,7 +31,7 @@ use super::manifest::{
     Batch, DocFreqEntry, InputEntry, LabelEntry, Manifest, ScatterRule, ShardEntry,
     SketchFileEntry, Split, SplitRule, FORMAT_NAME, MANIFEST_FILE, VERSION,
 };
-use super::sketch::{self, ChunkCounter, ChunkField, TokenSketch};
+use super::sketch::{self, ChunkCounter, ChunkField, MergeScratch, TokenSketch};
 use crate::error::{Error, IoContext, Result};
 use crate::features::{CharNgrams, FeatureConfig, Featurizer, HASH_SCHEME};
 use crate::input::pipeline::{Pipeline, Step};
@@ -418,8 +418,9 @@ struct ChunkOut {
     bad: Vec<BadLine>,
     blank: u64,
     lossy: u64,
-    /// The chunk's token summaries, one per text field.
-    sketch: Option<Vec<ChunkField>>,
+    /// The chunk's token summaries, one per text field, when a sketch is kept
+    /// (their buffers are reused from chunk to chunk).
+    sketch: Vec<ChunkField>,
 }
 
 impl ChunkOut {
@@ -435,7 +436,6 @@ impl ChunkOut {
         self.bad.clear();
         self.blank = 0;
         self.lossy = 0;
-        self.sketch = None;
     }
 }
 
@@ -545,7 +545,9 @@ fn process(
         out.bad.sort_by_key(|b| b.line);
     }
     out.blank = counts.blank;
-    out.sketch = w.tokens.as_mut().map(|tc| tc.finish(sketch_size));
+    if let Some(tc) = w.tokens.as_mut() {
+        tc.finish_into(sketch_size, &mut out.sketch);
+    }
 }
 
 fn join_sync(h: std::thread::JoinHandle<Result<()>>) -> Result<()> {
@@ -599,6 +601,8 @@ struct Sink {
     sketch: Option<TokenSketch>,
     /// Least guaranteed rows of a written token.
     sketch_min_count: u64,
+    /// Buffers of the sketch merges.
+    sketch_scratch: MergeScratch,
     syncs: Vec<std::thread::JoinHandle<Result<()>>>,
 }
 
@@ -648,6 +652,7 @@ impl Sink {
             syncs: Vec::new(),
             sketch: None,
             sketch_min_count: sketch::DEFAULT_MIN_COUNT,
+            sketch_scratch: MergeScratch::default(),
         }
     }
 
@@ -759,8 +764,8 @@ impl Sink {
     }
 
     fn push(&mut self, c: &mut ChunkOut) -> Result<()> {
-        if let (Some(g), Some(cs)) = (&mut self.sketch, c.sketch.take()) {
-            g.merge_chunk(&cs);
+        if let Some(g) = &mut self.sketch {
+            g.merge_chunk_with(&c.sketch, &mut self.sketch_scratch);
         }
         let writers = self.m.scatter.writers as u64;
         let scatter_seed = self.m.scatter.seed;

@@ -162,19 +162,32 @@ impl FieldSketch {
     /// in order of hash from one merge to the next (any order was allowed;
     /// [`TokenSketch::prune`] sorts them by count before they are written).
     pub fn merge_chunk(&mut self, other: &ChunkField, capacity: usize) {
+        self.merge_chunk_with(other, capacity, &mut MergeScratch::default());
+    }
+
+    /// [`FieldSketch::merge_chunk`] with buffers kept from one merge to the next.
+    pub fn merge_chunk_with(
+        &mut self,
+        other: &ChunkField,
+        capacity: usize,
+        scratch: &mut MergeScratch,
+    ) {
         if !self.entries.is_sorted_by_key(|e| e.hash) {
             self.entries.sort_unstable_by_key(|e| e.hash);
         }
         debug_assert!(other.entries.is_sorted_by_key(|e| e.0));
         let (m1, m2) = (self.floor, other.floor);
-        let old = std::mem::take(&mut self.entries);
+        let mut old = std::mem::take(&mut self.entries);
         let n = old.len() + other.entries.len();
-        let mut out = Vec::with_capacity(n);
+        let mut out = std::mem::take(&mut scratch.entries);
+        out.clear();
+        out.reserve(n);
         // For each entry of `out`, where its token lies in the chunk's text when
         // it is new (its text is copied only if it is kept), else `NONE`.
         const NONE: (u32, u32) = (u32::MAX, 0);
-        let mut src: Vec<(u32, u32)> = Vec::with_capacity(n);
-        let mut mine = old.into_iter().peekable();
+        let src = &mut scratch.src;
+        src.clear();
+        let mut mine = old.drain(..).peekable();
         let untouched = |mut e: SketchEntry| {
             e.count += m2;
             e.error += m2;
@@ -206,6 +219,7 @@ impl FieldSketch {
             out.push(untouched(e));
             src.push(NONE);
         }
+        scratch.entries = old;
         self.total += other.total;
         // Keep the `capacity` largest counts (ties by hash), in order of hash;
         // the floor becomes the largest count dropped (as `truncate`).
@@ -213,7 +227,9 @@ impl FieldSketch {
         if out.len() > capacity {
             let key = |e: &SketchEntry| (e.count, e.hash);
             let before = |a: &(u64, u64), b: &(u64, u64)| b.0.cmp(&a.0).then(a.1.cmp(&b.1));
-            let mut keys: Vec<(u64, u64)> = out.iter().map(key).collect();
+            let keys = &mut scratch.keys;
+            keys.clear();
+            keys.extend(out.iter().map(key));
             keys.select_nth_unstable_by(capacity, before);
             let dropped = keys[capacity..].iter().map(|k| k.0).max().unwrap_or(0);
             // Hashes are distinct, so the order is total: the kept entries are
@@ -233,7 +249,7 @@ impl FieldSketch {
         } else {
             self.floor = base;
         }
-        for (e, &(start, len)) in out.iter_mut().zip(&src) {
+        for (e, &(start, len)) in out.iter_mut().zip(src.iter()) {
             if start != NONE.0 {
                 let t = &other.text[start as usize..(start + len) as usize];
                 // Tokens are UTF-8 (the tokenizer decodes): the lossy copy is a
@@ -304,6 +320,15 @@ impl FieldSketch {
     }
 }
 
+/// Buffers of [`FieldSketch::merge_chunk_with`], kept between merges so that
+/// merging a chunk allocates nothing.
+#[derive(Debug, Default)]
+pub struct MergeScratch {
+    entries: Vec<SketchEntry>,
+    src: Vec<(u32, u32)>,
+    keys: Vec<(u64, u64)>,
+}
+
 /// The token sketch of every text field.
 #[derive(Debug, Clone, PartialEq, Eq)]
 pub struct TokenSketch {
@@ -335,9 +360,14 @@ impl TokenSketch {
 
     /// Merge the per-field summaries of one chunk into this sketch.
     pub fn merge_chunk(&mut self, chunk: &[ChunkField]) {
+        self.merge_chunk_with(chunk, &mut MergeScratch::default());
+    }
+
+    /// [`TokenSketch::merge_chunk`] with buffers kept from one merge to the next.
+    pub fn merge_chunk_with(&mut self, chunk: &[ChunkField], scratch: &mut MergeScratch) {
         let cap = self.capacity as usize;
         for (a, b) in self.fields.iter_mut().zip(chunk) {
-            a.merge_chunk(b, cap);
+            a.merge_chunk_with(b, cap, scratch);
         }
     }
 
@@ -768,17 +798,23 @@ impl ChunkCounter {
     /// The chunk's summaries (at most `capacity` entries per field, floor =
     /// largest count dropped); the counter is emptied for the next chunk.
     pub fn finish(&mut self, capacity: usize) -> Vec<ChunkField> {
+        let mut out = Vec::new();
+        self.finish_into(capacity, &mut out);
+        out
+    }
+
+    /// [`ChunkCounter::finish`] into summaries already allocated (those of an
+    /// earlier chunk, whose buffers are reused).
+    pub fn finish_into(&mut self, capacity: usize, out: &mut Vec<ChunkField>) {
         self.row = 0;
-        let mut out = Vec::with_capacity(self.fields.len());
-        for f in &mut self.fields {
-            let mut entries: Vec<(u64, u64, u32, u32)> = f
-                .used
-                .drain(..)
-                .map(|p| {
-                    let s = std::mem::take(&mut f.table[p as usize]);
-                    (s.hash, s.count as u64, s.start, s.len)
-                })
-                .collect();
+        out.resize_with(self.fields.len(), ChunkField::default);
+        for (f, o) in self.fields.iter_mut().zip(out.iter_mut()) {
+            let mut entries = std::mem::take(&mut o.entries);
+            entries.clear();
+            entries.extend(f.used.drain(..).map(|p| {
+                let s = std::mem::take(&mut f.table[p as usize]);
+                (s.hash, s.count as u64, s.start, s.len)
+            }));
             let mut floor = 0;
             if entries.len() > capacity {
                 entries.select_nth_unstable_by_key(capacity, |e| (std::cmp::Reverse(e.1), e.0));
@@ -788,17 +824,19 @@ impl ChunkCounter {
             // In order of hash, as [`FieldSketch::merge_chunk`] walks them
             // (sorted here, in the worker, rather than in the writer).
             entries.sort_unstable_by_key(|e| e.0);
-            let cap = f.text.capacity();
-            let text = std::mem::replace(&mut f.text, Vec::with_capacity(cap));
-            out.push(ChunkField {
+            // The summary takes the text; the counter gets the old summary's
+            // buffer.
+            let mut text = std::mem::take(&mut o.text);
+            text.clear();
+            std::mem::swap(&mut text, &mut f.text);
+            *o = ChunkField {
                 total: f.total,
                 floor,
                 entries,
                 text,
-            });
+            };
             f.total = 0;
         }
-        out
     }
 }
 
