@@ -21,8 +21,9 @@
 //! 1. **Per chunk** (in the workers): exact counts of the chunk's tokens
 //!    ([`ChunkCounter`]; memory bounded by the chunk's size), then the
 //!    `capacity` largest kept, `floor` = the largest count dropped.
-//! 2. **In input order** (in the writer thread): each chunk summary is merged
-//!    into the running one ([`FieldSketch::merge`], the Space-Saving merge of
+//! 2. **In input order** (on the thread that writes the rows): each chunk
+//!    summary is merged into the running one ([`FieldSketch::merge`], the
+//!    Space-Saving merge of
 //!    Cafaro, Pulimeno and Tempesta 2016, after the mergeable summaries of
 //!    Agarwal et al. 2012): for every token of either summary, `count = c₁ + c₂`
 //!    and `error = e₁ + e₂`, where a token missing from a summary takes that
