@@ -1,5 +1,6 @@
-//! Criterion benchmarks of the ingest kernels: tokenizing + hashing a row, and
-//! parsing + hashing a whole TSV chunk as an ingest worker does.
+//! Criterion benchmarks of the ingest kernels: tokenizing alone, tokenizing +
+//! hashing a row, and parsing + hashing a whole TSV chunk as an ingest worker
+//! does.
 //!
 //! Input: `fixtures/inbox.tsv` (committed, invented) repeated to about 4 MiB, and
 //! a generated stream of short messages from `tamis::synth`.
@@ -53,6 +54,16 @@ fn bench(c: &mut Criterion) {
             .split(|&b| b == b'\n')
             .filter_map(|l| l.iter().position(|&b| b == b'\t').map(|t| &l[t + 1..]))
             .collect();
+        g.bench_function("tokenize", |b| {
+            let mut buf = Vec::new();
+            b.iter(|| {
+                let mut n = 0usize;
+                for t in &texts {
+                    tamis::features::tokenize(t, &mut buf, |tok| n += tok.len());
+                }
+                n
+            })
+        });
         g.bench_function("tokenize_hash_rows", |b| {
             let mut f = Featurizer::new(&config()).unwrap();
             let (mut idx, mut val) = (Vec::new(), Vec::new());

@@ -2,16 +2,12 @@
 //! input order, on several threads.
 
 use std::sync::atomic::AtomicU64;
-use std::sync::mpsc::sync_channel;
 use std::sync::Arc;
-
-use rayon::prelude::*;
 
 use crate::error::{Error, Result};
 use crate::features::Featurizer;
-use crate::input::{
-    parse_chunk, read_inputs, BadReason, Chunk, InputSpec, LabelMode, ParseScratch, ReadMsg,
-};
+use crate::input::pipeline::{Pipeline, Step};
+use crate::input::{parse_chunk, BadReason, Chunk, InputSpec, LabelMode, ParseScratch};
 use crate::model::{Decision, Model, Scorer, UNDECIDED};
 use crate::shard::Row;
 
@@ -70,6 +66,76 @@ pub fn decision_labels(model: &Model) -> Vec<String> {
     }
 }
 
+/// An [`Outcome`] borrowed from the worker that produced it: what a consumer
+/// formats without copying the label or the scores.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub enum OutcomeRef<'a> {
+    /// A scored record (see [`Outcome::Scored`]).
+    Scored {
+        /// Index of the input it came from.
+        input: usize,
+        /// 1-based line where it starts.
+        line: u64,
+        /// Predicted label.
+        label: &'a str,
+        /// The score.
+        score: f64,
+        /// The probability, when the model gives one.
+        probability: Option<f64>,
+        /// The record's own label, when it had one.
+        truth: Option<&'a str>,
+        /// Scores of every model (empty unless labels are required).
+        scores: &'a [f64],
+    },
+    /// A record that could not be scored (see [`Outcome::Skipped`]).
+    Skipped {
+        /// Index of the input it came from.
+        input: usize,
+        /// 1-based line.
+        line: u64,
+        /// Why.
+        reason: BadReason,
+        /// Details.
+        detail: &'a str,
+    },
+}
+
+impl OutcomeRef<'_> {
+    /// An owned copy.
+    pub fn to_owned(&self) -> Outcome {
+        match *self {
+            OutcomeRef::Scored {
+                input,
+                line,
+                label,
+                score,
+                probability,
+                truth,
+                scores,
+            } => Outcome::Scored {
+                input,
+                line,
+                label: label.to_string(),
+                score,
+                probability,
+                truth: truth.map(str::to_string),
+                scores: scores.to_vec(),
+            },
+            OutcomeRef::Skipped {
+                input,
+                line,
+                reason,
+                detail,
+            } => Outcome::Skipped {
+                input,
+                line,
+                reason,
+                detail: detail.to_string(),
+            },
+        }
+    }
+}
+
 struct Worker {
     feat: Featurizer,
     scratch: ParseScratch,
@@ -78,6 +144,9 @@ struct Worker {
     scores: Vec<f64>,
 }
 
+/// Score the records of one chunk, calling `emit` with each outcome in input
+/// order.
+#[allow(clippy::too_many_arguments)]
 fn score_chunk(
     chunk: &Chunk,
     spec: &InputSpec,
@@ -86,8 +155,8 @@ fn score_chunk(
     model: &Model,
     names: &[String],
     w: &mut Worker,
-) -> Vec<Outcome> {
-    let mut out = Vec::new();
+    emit: &mut dyn FnMut(OutcomeRef<'_>),
+) {
     let Worker {
         feat,
         scratch,
@@ -95,7 +164,8 @@ fn score_chunk(
         val,
         scores,
     } = w;
-    let mut bad = Vec::new();
+    // Both callbacks of `parse_chunk` emit, in input order.
+    let emit = std::cell::RefCell::new(emit);
     parse_chunk(
         chunk,
         spec,
@@ -112,11 +182,11 @@ fn score_chunk(
                 }
             }
             if feat.is_empty() {
-                out.push(Outcome::Skipped {
+                (emit.borrow_mut())(OutcomeRef::Skipped {
                     input: chunk.input,
                     line: f.line,
                     reason: BadReason::EmptyText,
-                    detail: "no word in the text".into(),
+                    detail: "no word in the text",
                 });
                 return;
             }
@@ -133,8 +203,8 @@ fn score_chunk(
             // class (the highest margin when no class clears its threshold).
             let decision = model.decide(scores);
             let (label, shown) = match decision {
-                Decision::Class(c) if model.is_binary() => (names[c].clone(), 0),
-                Decision::Class(c) => (names[c].clone(), c),
+                Decision::Class(c) if model.is_binary() => (names[c].as_str(), 0),
+                Decision::Class(c) => (names[c].as_str(), c),
                 Decision::Undecided => {
                     let mut best = 0;
                     for (c, &s) in scores.iter().enumerate() {
@@ -142,40 +212,33 @@ fn score_chunk(
                             best = c;
                         }
                     }
-                    (UNDECIDED.to_string(), best)
+                    (UNDECIDED, best)
                 }
             };
             let score = scores[shown];
-            out.push(Outcome::Scored {
+            (emit.borrow_mut())(OutcomeRef::Scored {
                 input: chunk.input,
                 line: f.line,
                 label,
                 score,
                 probability: model.probability(shown, score),
-                truth: f.label.as_deref().map(str::to_string),
+                truth: f.label.as_deref(),
                 scores: if mode == LabelMode::Required {
-                    scores.clone()
+                    scores
                 } else {
-                    Vec::new()
+                    &[]
                 },
             });
         },
         |b| {
-            bad.push(Outcome::Skipped {
+            (emit.borrow_mut())(OutcomeRef::Skipped {
                 input: chunk.input,
                 line: b.line,
                 reason: b.reason,
-                detail: b.detail,
+                detail: &b.detail,
             })
         },
     );
-    if !bad.is_empty() {
-        out.extend(bad);
-        out.sort_by_key(|o| match o {
-            Outcome::Scored { line, .. } | Outcome::Skipped { line, .. } => *line,
-        });
-    }
-    out
 }
 
 /// Check that the input's fields are the ones the model was trained on.
@@ -201,81 +264,68 @@ pub fn score_inputs(
     threads: usize,
     mut sink: impl FnMut(Vec<Outcome>) -> Result<()>,
 ) -> Result<()> {
+    score_inputs_into(
+        model,
+        inputs,
+        spec,
+        mode,
+        threads,
+        Vec::new,
+        |outs: &mut Vec<Outcome>, o| outs.push(o.to_owned()),
+        |outs| sink(std::mem::take(outs)),
+    )
+}
+
+/// Score `inputs` with `model` on `threads` threads, each worker gathering the
+/// outcomes of a chunk into an output of its own with `add` (formatting them,
+/// say, so that this work is shared by the threads too); `consume` takes the
+/// outputs in input order, on the calling thread, and leaves them empty to be
+/// used again.
+#[allow(clippy::too_many_arguments)]
+pub fn score_inputs_into<O: Send>(
+    model: &Model,
+    inputs: &[String],
+    spec: &InputSpec,
+    mode: LabelMode,
+    threads: usize,
+    new_output: impl Fn() -> O,
+    add: impl Fn(&mut O, OutcomeRef<'_>) + Sync,
+    mut consume: impl FnMut(&mut O) -> Result<()>,
+) -> Result<()> {
     check_spec(model, spec)?;
     let names = decision_labels(model);
     let scorer = model.scorer();
-    let pool = rayon::ThreadPoolBuilder::new()
-        .num_threads(threads.max(1))
-        .thread_name(|i| format!("tamis-score-{i}"))
-        .build()
-        .map_err(|e| Error::Invalid(format!("cannot start threads: {e}")))?;
-    let batch_len = 2 * threads.max(1);
-    let score_batch = |batch: Vec<Chunk>| -> Vec<Vec<Outcome>> {
-        pool.install(|| {
-            batch
-                .par_iter()
-                .map_init(
-                    || Worker {
-                        feat: Featurizer::new(&model.meta.features).expect("validated on load"),
-                        scratch: ParseScratch::default(),
-                        idx: Vec::new(),
-                        val: Vec::new(),
-                        scores: Vec::new(),
-                    },
-                    |w, c| score_chunk(c, spec, mode, &scorer, model, &names, w),
-                )
-                .collect()
+    let threads = threads.max(1);
+    let workers: Vec<Worker> = (0..threads)
+        .map(|_| {
+            Ok(Worker {
+                feat: Featurizer::new(&model.meta.features)?,
+                scratch: ParseScratch::default(),
+                idx: Vec::new(),
+                val: Vec::new(),
+                scores: Vec::new(),
+            })
         })
+        .collect::<Result<_>>()?;
+    let pipeline = Pipeline {
+        inputs,
+        spec,
+        mode,
+        progress: Arc::new(AtomicU64::new(0)),
+        outputs: 2 * threads + 2,
     };
-    std::thread::scope(|s| -> Result<()> {
-        let (tx, rx) = sync_channel::<ReadMsg>(batch_len + 2);
-        let progress = Arc::new(AtomicU64::new(0));
-        std::thread::Builder::new()
-            .name("tamis-read".into())
-            .spawn_scoped(s, move || read_inputs(inputs, spec, mode, progress, tx))
-            .map_err(|e| Error::Invalid(format!("cannot start a thread: {e}")))?;
-        // The sink (output, on this thread) takes the results of one batch
-        // while the pool scores the next, in input order.
-        let mut ready: Vec<Vec<Outcome>> = Vec::new();
-        loop {
-            let mut batch = Vec::with_capacity(batch_len);
-            let mut done = false;
-            let mut failure = None;
-            while batch.len() < batch_len {
-                match rx.recv() {
-                    Ok(ReadMsg::Chunk(c)) => batch.push(c),
-                    Ok(ReadMsg::Done(..)) => break,
-                    Ok(ReadMsg::Failed(e)) => {
-                        failure = Some(e);
-                        break;
-                    }
-                    Err(_) => {
-                        done = true;
-                        break;
-                    }
-                }
-            }
-            let outs = std::thread::scope(|inner| -> Result<Vec<Vec<Outcome>>> {
-                let scoring = std::thread::Builder::new()
-                    .name("tamis-score".into())
-                    .spawn_scoped(inner, || score_batch(batch))
-                    .map_err(|e| Error::Invalid(format!("cannot start a thread: {e}")))?;
-                let sunk = std::mem::take(&mut ready)
-                    .into_iter()
-                    .try_for_each(&mut sink);
-                let outs = scoring
-                    .join()
-                    .map_err(|_| Error::Invalid("internal: scoring thread panicked".into()))?;
-                sunk.map(|_| outs)
-            })?;
-            ready = outs;
-            if let Some(e) = failure {
-                ready.into_iter().try_for_each(&mut sink)?;
-                return Err(e);
-            }
-            if done {
-                return ready.into_iter().try_for_each(&mut sink);
-            }
-        }
-    })
+    pipeline.run(
+        workers,
+        new_output,
+        |w, c, out| {
+            score_chunk(c, spec, mode, &scorer, model, &names, w, &mut |o| {
+                add(out, o)
+            })
+        },
+        |step| match step {
+            Step::Chunk(out) => consume(out),
+            Step::Done(..) => Ok(()),
+        },
+    )?;
+    Ok(())
 }

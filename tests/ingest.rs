@@ -687,6 +687,152 @@ fn thread_count_does_not_change_the_dataset() {
     tamis(["verify", s(&dirs[1])]).ok();
 }
 
+/// A text that takes every path of the tokenizer and the featurizer: capitals,
+/// digits, e-mail-like spans, non-ASCII letters and invalid UTF-8, words
+/// repeated past the lookup table of damped counts, overlong tokens, CRLF line
+/// ends, blank and bad lines.
+fn varied_tsv() -> Vec<u8> {
+    let mut t = Vec::new();
+    synth_tsv_into(&mut t, 40_000, 23);
+    t.extend(fixture_bytes("inbox.tsv"));
+    let many = "again ".repeat(70);
+    let long = "x".repeat(600);
+    for i in 0..400u32 {
+        let line = match i % 8 {
+            0 => format!("spam\tFREE Prize {i}: write to Win.Now+{i}@prize-desk.example today!\n"),
+            1 => format!("tickets\tÜber Straße ΣΊΣΥΦΟΣ café {i} naïve İstanbul 日本語テキスト\r\n"),
+            2 => format!("schedule\t{many} and {i}\n"),
+            3 => format!("feedback\t{long} ok {i}\n"),
+            4 => "\n".to_string(),
+            5 => format!("no tab on line {i}\n"),
+            6 => format!(
+                "lost_property\tOrder {i}A-77b ref AB12cd3, 2026-03-0{}\n",
+                i % 10
+            ),
+            _ => format!("accessibility\tramp RAMP Ramp ramp lift {i} lift LIFT\n"),
+        };
+        t.extend(line.as_bytes());
+        if i % 50 == 7 {
+            t.extend(b"feedback\tbroken \xff\xfe bytes \xe2\x82 here\n");
+        }
+    }
+    t
+}
+
+fn synth_tsv_into(buf: &mut Vec<u8>, rows: u64, seed: u64) {
+    tamis::synth::Synth::new(tamis::synth::SynthConfig {
+        seed,
+        ..Default::default()
+    })
+    .write_rows(rows, buf)
+    .unwrap();
+}
+
+/// One digest of a dataset: its data files (shards, document frequencies,
+/// token sketch) by name, and its manifest without the time stamp, version
+/// and checksum (and the input paths, which are temporary).
+fn dataset_digest(dir: &Path) -> u64 {
+    let mut all = Vec::new();
+    for (name, bytes) in data_files(dir) {
+        all.extend(name.as_bytes());
+        all.extend(xxhash_rust::xxh3::xxh3_64(&bytes).to_le_bytes());
+    }
+    let mut m = manifest_json(dir);
+    m["checksum"] = Value::Null;
+    m["written_by"] = Value::Null;
+    for b in m["batches"].as_array_mut().unwrap() {
+        b["created_unix"] = Value::Null;
+        for i in b["inputs"].as_array_mut().unwrap() {
+            i["path"] = Value::Null;
+        }
+    }
+    all.extend(serde_json::to_vec(&m).unwrap());
+    xxhash_rust::xxh3::xxh3_64(&all)
+}
+
+/// The datasets written for fixed inputs and settings are pinned, byte for
+/// byte: a faster ingest must write exactly what earlier versions wrote (the
+/// digests were taken from the version before the ingest speed-ups), with any
+/// thread count.
+#[test]
+fn datasets_are_pinned_byte_for_byte() {
+    let t = tmp();
+    let input = t.path().join("varied.tsv");
+    std::fs::write(&input, varied_tsv()).unwrap();
+    let cases: [(&str, &[&str], u64); 4] = [
+        (
+            "defaults",
+            &["--shard-rows", "2000", "--max-bad-fraction", "0.1"],
+            0x7b18ddb5593a568c,
+        ),
+        (
+            "trigrams, character n-grams, masks",
+            &[
+                "--ngrams",
+                "3",
+                "--char-ngrams",
+                "2..4",
+                "--mask-digits",
+                "--mask-emails",
+                "--validation",
+                "0.3",
+                "--scatter",
+                "3",
+                "--log2-buckets",
+                "16",
+                "--max-bad-fraction",
+                "0.1",
+            ],
+            0xb8097496970c9bbb,
+        ),
+        (
+            "unigrams, raw counts, binary, small sketch",
+            &[
+                "--ngrams",
+                "1",
+                "--raw-counts",
+                "--positive",
+                "spam",
+                "--sketch-size",
+                "50",
+                "--sketch-min-count",
+                "1",
+                "--seed",
+                "9",
+                "--max-bad-fraction",
+                "0.1",
+            ],
+            0xf1fb98657792c107,
+        ),
+        (
+            "JSON Lines with a numeric field",
+            &JSONL_FIELDS,
+            0x6850751b6b3b630f,
+        ),
+    ];
+    let mut got = Vec::new();
+    let mut same = true;
+    for (i, (what, args, want)) in cases.iter().enumerate() {
+        let src = if i == 3 {
+            fixture("inbox.jsonl")
+        } else {
+            input.clone()
+        };
+        for threads in ["1", "2"] {
+            let out = t.path().join(format!("c{i}-j{threads}"));
+            let mut a = args.to_vec();
+            a.extend(["--threads", threads, "--quiet", "--no-sync"]);
+            ingest(&[&src], &out, &a).ok();
+            let d = dataset_digest(&out);
+            got.push(format!(
+                "{what} (-j {threads}): {d:#018x}, pinned {want:#018x}"
+            ));
+            same &= d == *want;
+        }
+    }
+    assert!(same, "{}", got.join("\n"));
+}
+
 #[test]
 fn thread_count_does_not_change_a_truncated_token_sketch() {
     // A sketch far smaller than the vocabulary, so that chunk summaries drop

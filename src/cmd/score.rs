@@ -7,7 +7,7 @@ use std::process::ExitCode;
 use anyhow::{bail, Context};
 use tamis::input::{Format, InputSpec, LabelMode};
 use tamis::model::Model;
-use tamis::score::{self, Outcome};
+use tamis::score::{self, OutcomeRef};
 
 /// Output formats of `tamis score`.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum)]
@@ -115,6 +115,14 @@ impl ModelFields {
     }
 }
 
+/// The output lines of one chunk, formatted by a scoring thread.
+#[derive(Default)]
+struct Lines {
+    bytes: Vec<u8>,
+    scored: u64,
+    skipped: u64,
+}
+
 fn json_str(s: &str) -> String {
     serde_json::to_string(s).expect("strings serialise")
 }
@@ -147,78 +155,114 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
     let (mut scored, mut skipped) = (0u64, 0u64);
     let threads = a.threads.unwrap_or_else(super::default_threads);
     let mut io_err: Option<std::io::Error> = None;
-    let r = score::score_inputs(
+    let format = a.output_format;
+    // The lines are formatted by the scoring threads, a chunk at a time, and
+    // written here in input order.
+    let r = score::score_inputs_into(
         &model,
         &inputs,
         &spec,
         LabelMode::Optional,
         threads,
-        |outs| {
-            for o in outs {
-                let (input, line) = match &o {
-                    Outcome::Scored { input, line, .. } | Outcome::Skipped { input, line, .. } => {
-                        (*input, *line)
-                    }
-                };
-                let place = if several {
+        Lines::default,
+        |l: &mut Lines, o| {
+            let place = |input: usize, line: u64| {
+                if several {
                     format!("{}:{line}", names[input])
                 } else {
                     line.to_string()
-                };
-                let w = match (&o, a.output_format) {
-                    (
-                        Outcome::Scored {
-                            label,
-                            score,
-                            probability,
-                            ..
-                        },
-                        OutputFormat::Tsv,
-                    ) => {
-                        scored += 1;
-                        match probability.filter(|_| show_p) {
-                            Some(p) => writeln!(out, "{place}\t{label}\t{score:.6}\t{p:.6}"),
-                            None => writeln!(out, "{place}\t{label}\t{score:.6}"),
-                        }
-                    }
-                    (
-                        Outcome::Scored {
-                            label,
-                            score,
-                            probability,
-                            ..
-                        },
-                        OutputFormat::Jsonl,
-                    ) => {
-                        scored += 1;
-                        match probability.filter(|_| show_p) {
-                        Some(p) => writeln!(out, "{{\"where\":{},\"label\":{},\"score\":{score:.6},\"probability\":{p:.6}}}", json_str(&place), json_str(label)),
-                        None => writeln!(out, "{{\"where\":{},\"label\":{},\"score\":{score:.6}}}", json_str(&place), json_str(label)),
-                    }
-                    }
-                    (Outcome::Skipped { reason, detail, .. }, OutputFormat::Tsv) => {
-                        skipped += 1;
-                        writeln!(
-                            out,
-                            "{place}\t!skipped\t{reason}: {}",
-                            detail.replace(['\t', '\n'], " ")
-                        )
-                    }
-                    (Outcome::Skipped { reason, detail, .. }, OutputFormat::Jsonl) => {
-                        skipped += 1;
-                        writeln!(
-                            out,
-                            "{{\"where\":{},\"skipped\":{},\"detail\":{}}}",
-                            json_str(&place),
-                            json_str(reason.key()),
-                            json_str(detail)
-                        )
-                    }
-                };
-                if let Err(e) = w {
-                    io_err = Some(e);
-                    return Err(tamis::Error::Invalid("output closed".into()));
                 }
+            };
+            let b = &mut l.bytes;
+            // Writing into a `Vec` cannot fail.
+            let _ = match (o, format) {
+                (
+                    OutcomeRef::Scored {
+                        input,
+                        line,
+                        label,
+                        score,
+                        probability,
+                        ..
+                    },
+                    OutputFormat::Tsv,
+                ) => {
+                    l.scored += 1;
+                    if several {
+                        write!(b, "{}", place(input, line))
+                    } else {
+                        write!(b, "{line}")
+                    }
+                    .and_then(|_| match probability.filter(|_| show_p) {
+                        Some(p) => writeln!(b, "\t{label}\t{score:.6}\t{p:.6}"),
+                        None => writeln!(b, "\t{label}\t{score:.6}"),
+                    })
+                }
+                (
+                    OutcomeRef::Scored {
+                        input,
+                        line,
+                        label,
+                        score,
+                        probability,
+                        ..
+                    },
+                    OutputFormat::Jsonl,
+                ) => {
+                    l.scored += 1;
+                    let place = place(input, line);
+                    match probability.filter(|_| show_p) {
+                        Some(p) => writeln!(b, "{{\"where\":{},\"label\":{},\"score\":{score:.6},\"probability\":{p:.6}}}", json_str(&place), json_str(label)),
+                        None => writeln!(b, "{{\"where\":{},\"label\":{},\"score\":{score:.6}}}", json_str(&place), json_str(label)),
+                    }
+                }
+                (
+                    OutcomeRef::Skipped {
+                        input,
+                        line,
+                        reason,
+                        detail,
+                    },
+                    OutputFormat::Tsv,
+                ) => {
+                    l.skipped += 1;
+                    writeln!(
+                        b,
+                        "{}\t!skipped\t{reason}: {}",
+                        place(input, line),
+                        detail.replace(['\t', '\n'], " ")
+                    )
+                }
+                (
+                    OutcomeRef::Skipped {
+                        input,
+                        line,
+                        reason,
+                        detail,
+                    },
+                    OutputFormat::Jsonl,
+                ) => {
+                    l.skipped += 1;
+                    writeln!(
+                        b,
+                        "{{\"where\":{},\"skipped\":{},\"detail\":{}}}",
+                        json_str(&place(input, line)),
+                        json_str(reason.key()),
+                        json_str(detail)
+                    )
+                }
+            };
+        },
+        |l| {
+            scored += l.scored;
+            skipped += l.skipped;
+            let w = out.write_all(&l.bytes);
+            l.bytes.clear();
+            l.scored = 0;
+            l.skipped = 0;
+            if let Err(e) = w {
+                io_err = Some(e);
+                return Err(tamis::Error::Invalid("output closed".into()));
             }
             Ok(())
         },

@@ -1,10 +1,10 @@
 //! The ingest pipeline: raw inputs → parsed records → hashed rows → shards.
 //!
-//! Three stages run at once. A reader thread decompresses the inputs in order
-//! and cuts them into chunks; the calling thread parses and hashes batches of
-//! chunks on a rayon pool (`par_iter` keeps their order); a writer thread appends
-//! the rows, in input order, to shard writers. The dataset written therefore
-//! does not depend on the number of threads.
+//! Three stages run at once ([`crate::input::pipeline`]). A reader thread
+//! decompresses the inputs in order and cuts them into chunks; worker threads
+//! parse and hash chunks as they come; the calling thread takes the hashed rows
+//! in input order and appends them to shard writers. The dataset written
+//! therefore does not depend on the number of threads.
 //!
 //! Rows are spread over several open training shard writers: row `i` (counting
 //! training rows over the whole dataset, appends included) goes to writer
@@ -21,11 +21,9 @@ use std::collections::{BTreeMap, HashMap};
 use std::io::IsTerminal;
 use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicU64, Ordering};
-use std::sync::mpsc::{sync_channel, Receiver};
 use std::sync::Arc;
 use std::time::Instant;
 
-use rayon::prelude::*;
 use xxhash_rust::xxh3::xxh3_64_with_seed;
 
 use super::docfreq::{self, DocCounter};
@@ -33,12 +31,12 @@ use super::manifest::{
     Batch, DocFreqEntry, InputEntry, LabelEntry, Manifest, ScatterRule, ShardEntry,
     SketchFileEntry, Split, SplitRule, FORMAT_NAME, MANIFEST_FILE, VERSION,
 };
-use super::sketch::{self, ChunkCounter, ChunkField, TokenSketch};
+use super::sketch::{self, ChunkCounter, ChunkField, MergeScratch, TokenSketch};
 use crate::error::{Error, IoContext, Result};
 use crate::features::{CharNgrams, FeatureConfig, Featurizer, HASH_SCHEME};
+use crate::input::pipeline::{Pipeline, Step};
 use crate::input::{
-    self, parse_chunk, read_inputs, BadLine, BadReason, Chunk, Fingerprint, InputSpec, LabelMode,
-    ParseScratch, ReadMsg,
+    self, parse_chunk, BadLine, BadReason, Chunk, Fingerprint, InputSpec, LabelMode, ParseScratch,
 };
 use crate::shard::{ShardWriter, DEFAULT_NNZ_CAPACITY};
 use crate::util::{self, Lock};
@@ -420,37 +418,51 @@ struct ChunkOut {
     bad: Vec<BadLine>,
     blank: u64,
     lossy: u64,
-    /// The chunk's token summaries, one per text field.
-    sketch: Option<Vec<ChunkField>>,
+    /// The chunk's token summaries, one per text field, when a sketch is kept
+    /// (their buffers are reused from chunk to chunk).
+    sketch: Vec<ChunkField>,
 }
 
+impl ChunkOut {
+    /// Empty every buffer, keeping its memory, for the chunk `input`.
+    fn reset(&mut self, input: usize) {
+        self.input = input;
+        self.label_names.clear();
+        self.labels.clear();
+        self.validation.clear();
+        self.row_ends.clear();
+        self.indices.clear();
+        self.values.clear();
+        self.bad.clear();
+        self.blank = 0;
+        self.lossy = 0;
+    }
+}
+
+/// What a worker thread keeps from chunk to chunk.
 struct Worker {
     feat: Featurizer,
     scratch: ParseScratch,
     local_labels: HashMap<String, u32>,
     /// Token counts of the chunk, when a sketch is kept.
     tokens: Option<ChunkCounter>,
+    /// Document frequencies of the training rows this worker saw.
+    df: DocCounter,
 }
 
-/// Parse and hash one chunk; count document frequencies of its training rows
-/// into `df`.
+/// Parse and hash one chunk into `out`; count document frequencies of its
+/// training rows.
 fn process(
     chunk: &Chunk,
     spec: &InputSpec,
     w: &mut Worker,
-    df: &mut DocCounter,
+    out: &mut ChunkOut,
     split_seed: u64,
     fraction: f64,
     sketch_size: usize,
-) -> ChunkOut {
-    let guess = chunk.data.len() / 4;
-    let mut out = ChunkOut {
-        input: chunk.input,
-        indices: Vec::with_capacity(guess),
-        values: Vec::with_capacity(guess),
-        row_ends: Vec::with_capacity(guess / 16),
-        ..ChunkOut::default()
-    };
+) {
+    out.reset(chunk.input);
+    let df = &mut w.df;
     let feat = &mut w.feat;
     let local = &mut w.local_labels;
     local.clear();
@@ -494,8 +506,18 @@ fn process(
             feat.finish_row(&mut out.indices, &mut out.values);
             out.row_ends.push(out.indices.len() as u32);
             let name = f.label.as_deref().unwrap_or("");
-            let id = match local.get(name) {
-                Some(&id) => id,
+            // A few labels are found faster by a look along the list than by
+            // hashing the name.
+            let known = if out.label_names.len() <= 16 {
+                out.label_names
+                    .iter()
+                    .position(|n| n == name)
+                    .map(|i| i as u32)
+            } else {
+                local.get(name).copied()
+            };
+            let id = match known {
+                Some(id) => id,
                 None => {
                     let id = out.label_names.len() as u32;
                     out.label_names.push(name.to_string());
@@ -523,8 +545,9 @@ fn process(
         out.bad.sort_by_key(|b| b.line);
     }
     out.blank = counts.blank;
-    out.sketch = w.tokens.as_mut().map(|tc| tc.finish(sketch_size));
-    out
+    if let Some(tc) = w.tokens.as_mut() {
+        tc.finish_into(sketch_size, &mut out.sketch);
+    }
 }
 
 fn join_sync(h: std::thread::JoinHandle<Result<()>>) -> Result<()> {
@@ -578,6 +601,8 @@ struct Sink {
     sketch: Option<TokenSketch>,
     /// Least guaranteed rows of a written token.
     sketch_min_count: u64,
+    /// Buffers of the sketch merges.
+    sketch_scratch: MergeScratch,
     syncs: Vec<std::thread::JoinHandle<Result<()>>>,
 }
 
@@ -627,6 +652,7 @@ impl Sink {
             syncs: Vec::new(),
             sketch: None,
             sketch_min_count: sketch::DEFAULT_MIN_COUNT,
+            sketch_scratch: MergeScratch::default(),
         }
     }
 
@@ -737,9 +763,9 @@ impl Sink {
         }
     }
 
-    fn push(&mut self, mut c: ChunkOut) -> Result<()> {
-        if let (Some(g), Some(cs)) = (&mut self.sketch, c.sketch.take()) {
-            g.merge_chunk(&cs);
+    fn push(&mut self, c: &mut ChunkOut) -> Result<()> {
+        if let Some(g) = &mut self.sketch {
+            g.merge_chunk_with(&c.sketch, &mut self.sketch_scratch);
         }
         let writers = self.m.scatter.writers as u64;
         let scatter_seed = self.m.scatter.seed;
@@ -962,25 +988,6 @@ impl Sink {
     }
 }
 
-enum WriteMsg {
-    Rows(Vec<ChunkOut>),
-    Done(usize, Fingerprint),
-}
-
-fn write_rows(mut sink: Sink, rx: Receiver<WriteMsg>) -> Result<Sink> {
-    for msg in rx {
-        match msg {
-            WriteMsg::Rows(outs) => {
-                for o in outs {
-                    sink.push(o)?;
-                }
-            }
-            WriteMsg::Done(i, fp) => sink.input_done(i, fp),
-        }
-    }
-    Ok(sink)
-}
-
 fn progress_bar(enabled: bool, total: Option<u64>) -> Option<indicatif::ProgressBar> {
     if !enabled || !std::io::stderr().is_terminal() {
         return None;
@@ -1032,11 +1039,6 @@ pub fn ingest(opts: &IngestOptions, log: Log) -> Result<IngestSummary> {
     let start = Instant::now();
     let (_lock, manifest, replaced) = prepare(opts, &log)?;
     let threads = opts.threads.max(1);
-    let pool = rayon::ThreadPoolBuilder::new()
-        .num_threads(threads)
-        .thread_name(|i| format!("tamis-ingest-{i}"))
-        .build()
-        .map_err(|e| Error::Invalid(format!("cannot start {threads} threads: {e}")))?;
     let total: Option<u64> = opts.inputs.iter().map(|p| input::file_size(p)).sum();
     let bar = progress_bar(opts.progress, total);
     let log: Log = match &bar {
@@ -1082,79 +1084,35 @@ pub fn ingest(opts: &IngestOptions, log: Log) -> Result<IngestSummary> {
             .unwrap_or(sketch::DEFAULT_MIN_COUNT);
     }
     let spec = &opts.spec;
-    let batch_len = 2 * threads;
-    // Document frequencies: one array per pool thread, summed at the end
-    // (saturating sums of counts do not depend on the order).
     let buckets = cfg.buckets() as usize;
-    let dfs: Vec<std::sync::Mutex<DocCounter>> = (0..threads)
-        .map(|_| std::sync::Mutex::new(DocCounter::new(buckets)))
+    // Document frequencies: one counter per worker, summed at the end
+    // (saturating sums of counts do not depend on the order).
+    let workers: Vec<Worker> = (0..threads)
+        .map(|_| Worker {
+            feat: Featurizer::new(&cfg).expect("validated above"),
+            scratch: ParseScratch::default(),
+            local_labels: HashMap::new(),
+            tokens: keep_sketch.then(|| ChunkCounter::new(cfg.text_fields.len())),
+            df: DocCounter::new(buckets),
+        })
         .collect();
-
-    let result: Result<Sink> = std::thread::scope(|s| {
-        let (rtx, rrx) = sync_channel::<ReadMsg>(batch_len + 2);
-        let (wtx, wrx) = sync_channel::<WriteMsg>(2);
-        let rb = read_bytes.clone();
-        let inputs = &opts.inputs;
-        std::thread::Builder::new()
-            .name("tamis-read".into())
-            .spawn_scoped(s, move || {
-                read_inputs(inputs, spec, LabelMode::Required, rb, rtx)
-            })
-            .map_err(|e| Error::Invalid(format!("cannot start a thread: {e}")))?;
-        let writer = std::thread::Builder::new()
-            .name("tamis-write".into())
-            .spawn_scoped(s, move || write_rows(sink, wrx))
-            .map_err(|e| Error::Invalid(format!("cannot start a thread: {e}")))?;
-        let mut failure = None;
-        let mut pending_done = None;
-        'outer: loop {
-            let mut batch = Vec::with_capacity(batch_len);
-            let mut finished = false;
-            while batch.len() < batch_len {
-                match rrx.recv() {
-                    Ok(ReadMsg::Chunk(c)) => batch.push(c),
-                    Ok(ReadMsg::Done(i, fp)) => {
-                        pending_done = Some((i, fp));
-                        break;
-                    }
-                    Ok(ReadMsg::Failed(e)) => {
-                        failure = Some(e);
-                        break 'outer;
-                    }
-                    Err(_) => {
-                        finished = true;
-                        break;
-                    }
-                }
-            }
-            if !batch.is_empty() {
-                let outs: Vec<ChunkOut> = pool.install(|| {
-                    batch
-                        .par_iter()
-                        .map_init(
-                            || Worker {
-                                feat: Featurizer::new(&cfg).expect("validated above"),
-                                scratch: ParseScratch::default(),
-                                local_labels: HashMap::new(),
-                                tokens: keep_sketch
-                                    .then(|| ChunkCounter::new(cfg.text_fields.len())),
-                            },
-                            |w, c| {
-                                let t = rayon::current_thread_index().unwrap_or(0) % dfs.len();
-                                let mut df = dfs[t].lock().expect("not poisoned");
-                                process(c, spec, w, &mut df, split_seed, fraction, sketch_size)
-                            },
-                        )
-                        .collect()
-                });
-                if wtx.send(WriteMsg::Rows(outs)).is_err() {
-                    break;
-                }
-            }
-            if let Some((i, fp)) = pending_done.take() {
-                if wtx.send(WriteMsg::Done(i, fp)).is_err() {
-                    break;
-                }
+    let pipeline = Pipeline {
+        inputs: &opts.inputs,
+        spec,
+        mode: LabelMode::Required,
+        progress: read_bytes.clone(),
+        outputs: 2 * threads + 2,
+    };
+    // The rows are written on this thread, in input order, while the workers
+    // hash the next chunks.
+    let result = pipeline.run(
+        workers,
+        ChunkOut::default,
+        |w, c, out| process(c, spec, w, out, split_seed, fraction, sketch_size),
+        |step| {
+            match step {
+                Step::Chunk(out) => sink.push(out)?,
+                Step::Done(i, fp) => sink.input_done(i, fp),
             }
             if let Some(b) = &bar {
                 b.set_position(read_bytes.load(Ordering::Relaxed));
@@ -1163,30 +1121,16 @@ pub fn ingest(opts: &IngestOptions, log: Log) -> Result<IngestSummary> {
                     util::thousands(rows_done.load(Ordering::Relaxed))
                 ));
             }
-            if finished {
-                break;
-            }
-        }
-        drop(wtx);
-        drop(rrx);
-        let w = writer
-            .join()
-            .map_err(|_| Error::Invalid("internal: writer thread panicked".into()))?;
-        match failure {
-            Some(e) => Err(e),
-            None => w,
-        }
-    });
+            Ok(())
+        },
+    );
     if let Some(b) = &bar {
         b.finish_and_clear();
     }
-    let sink = result?;
+    let workers = result?;
     let mut df = vec![0u32; buckets];
-    for counter in dfs {
-        counter
-            .into_inner()
-            .expect("not poisoned")
-            .add_into(&mut df);
+    for w in &workers {
+        w.df.add_into(&mut df);
     }
     let (_m, mut summary) = sink.finish(&opts.spec, opts.max_bad_fraction, replaced, &df)?;
     summary.input_bytes = read_bytes.load(Ordering::Relaxed);

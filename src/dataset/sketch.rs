@@ -21,8 +21,9 @@
 //! 1. **Per chunk** (in the workers): exact counts of the chunk's tokens
 //!    ([`ChunkCounter`]; memory bounded by the chunk's size), then the
 //!    `capacity` largest kept, `floor` = the largest count dropped.
-//! 2. **In input order** (in the writer thread): each chunk summary is merged
-//!    into the running one ([`FieldSketch::merge`], the Space-Saving merge of
+//! 2. **In input order** (on the thread that writes the rows): each chunk
+//!    summary is merged into the running one ([`FieldSketch::merge`], the
+//!    Space-Saving merge of
 //!    Cafaro, Pulimeno and Tempesta 2016, after the mergeable summaries of
 //!    Agarwal et al. 2012): for every token of either summary, `count = c₁ + c₂`
 //!    and `error = e₁ + e₂`, where a token missing from a summary takes that
@@ -156,12 +157,116 @@ impl FieldSketch {
         self.merge_entries(other.floor, other.total, entries, capacity);
     }
 
-    /// Merge the summary of one chunk (see [`ChunkCounter::finish`]).
+    /// Merge the summary of one chunk (see [`ChunkCounter::finish`]): the rule
+    /// of [`FieldSketch::merge`], computed by walking both lists in order of
+    /// hash, which the ingest writer does once per chunk. The entries are kept
+    /// in order of hash from one merge to the next (any order was allowed;
+    /// [`TokenSketch::prune`] sorts them by count before they are written).
     pub fn merge_chunk(&mut self, other: &ChunkField, capacity: usize) {
+        self.merge_chunk_with(other, capacity, &mut MergeScratch::default());
+    }
+
+    /// [`FieldSketch::merge_chunk`] with buffers kept from one merge to the next.
+    pub fn merge_chunk_with(
+        &mut self,
+        other: &ChunkField,
+        capacity: usize,
+        scratch: &mut MergeScratch,
+    ) {
+        if !self.entries.is_sorted_by_key(|e| e.hash) {
+            self.entries.sort_unstable_by_key(|e| e.hash);
+        }
+        debug_assert!(other.entries.is_sorted_by_key(|e| e.0));
+        let (m1, m2) = (self.floor, other.floor);
+        let mut old = std::mem::take(&mut self.entries);
+        let n = old.len() + other.entries.len();
+        let mut out = std::mem::take(&mut scratch.entries);
+        out.clear();
+        out.reserve(n);
+        // For each entry of `out`, where its token lies in the chunk's text when
+        // it is new (its text is copied only if it is kept), else `NONE`.
+        const NONE: (u32, u32) = (u32::MAX, 0);
+        let src = &mut scratch.src;
+        src.clear();
+        let mut mine = old.drain(..).peekable();
+        let untouched = |mut e: SketchEntry| {
+            e.count += m2;
+            e.error += m2;
+            e
+        };
+        for &(hash, count, start, len) in &other.entries {
+            while let Some(e) = mine.next_if(|e| e.hash < hash) {
+                out.push(untouched(e));
+                src.push(NONE);
+            }
+            match mine.next_if(|e| e.hash == hash) {
+                Some(mut e) => {
+                    e.count += count;
+                    out.push(e);
+                    src.push(NONE);
+                }
+                None => {
+                    out.push(SketchEntry {
+                        hash,
+                        count: count + m1,
+                        error: m1,
+                        token: String::new(),
+                    });
+                    src.push((start, len));
+                }
+            }
+        }
+        for e in mine {
+            out.push(untouched(e));
+            src.push(NONE);
+        }
+        scratch.entries = old;
+        self.total += other.total;
+        // Keep the `capacity` largest counts (ties by hash), in order of hash;
+        // the floor becomes the largest count dropped (as `truncate`).
+        let base = m1 + m2;
+        if out.len() > capacity {
+            let key = |e: &SketchEntry| (e.count, e.hash);
+            let before = |a: &(u64, u64), b: &(u64, u64)| b.0.cmp(&a.0).then(a.1.cmp(&b.1));
+            let keys = &mut scratch.keys;
+            keys.clear();
+            keys.extend(out.iter().map(key));
+            keys.select_nth_unstable_by(capacity, before);
+            let dropped = keys[capacity..].iter().map(|k| k.0).max().unwrap_or(0);
+            // Hashes are distinct, so the order is total: the kept entries are
+            // exactly those before the first one dropped.
+            let first_dropped = keys[capacity];
+            let mut w = 0;
+            for i in 0..out.len() {
+                if before(&key(&out[i]), &first_dropped) == std::cmp::Ordering::Less {
+                    out.swap(w, i);
+                    src[w] = src[i];
+                    w += 1;
+                }
+            }
+            out.truncate(w);
+            src.truncate(w);
+            self.floor = base.max(dropped);
+        } else {
+            self.floor = base;
+        }
+        for (e, &(start, len)) in out.iter_mut().zip(src.iter()) {
+            if start != NONE.0 {
+                let t = &other.text[start as usize..(start + len) as usize];
+                // Tokens are UTF-8 (the tokenizer decodes): the lossy copy is a
+                // fallback that never runs.
+                e.token = String::from_utf8_lossy(t).into_owned();
+            }
+        }
+        self.entries = out;
+    }
+
+    /// The merge of a chunk by the general rule, as [`FieldSketch::merge`]
+    /// does it (the reference of [`FieldSketch::merge_chunk`] in tests).
+    #[cfg(test)]
+    fn merge_chunk_by_index(&mut self, other: &ChunkField, capacity: usize) {
         let entries = other.entries.iter().map(|&(hash, count, start, len)| {
             let t = &other.text[start as usize..(start + len) as usize];
-            // Tokens are UTF-8 (the tokenizer decodes): the lossy copy is a
-            // fallback that never runs.
             (hash, count, 0, String::from_utf8_lossy(t))
         });
         self.merge_entries(other.floor, other.total, entries, capacity);
@@ -216,6 +321,15 @@ impl FieldSketch {
     }
 }
 
+/// Buffers of [`FieldSketch::merge_chunk_with`], kept between merges so that
+/// merging a chunk allocates nothing.
+#[derive(Debug, Default)]
+pub struct MergeScratch {
+    entries: Vec<SketchEntry>,
+    src: Vec<(u32, u32)>,
+    keys: Vec<(u64, u64)>,
+}
+
 /// The token sketch of every text field.
 #[derive(Debug, Clone, PartialEq, Eq)]
 pub struct TokenSketch {
@@ -247,9 +361,14 @@ impl TokenSketch {
 
     /// Merge the per-field summaries of one chunk into this sketch.
     pub fn merge_chunk(&mut self, chunk: &[ChunkField]) {
+        self.merge_chunk_with(chunk, &mut MergeScratch::default());
+    }
+
+    /// [`TokenSketch::merge_chunk`] with buffers kept from one merge to the next.
+    pub fn merge_chunk_with(&mut self, chunk: &[ChunkField], scratch: &mut MergeScratch) {
         let cap = self.capacity as usize;
         for (a, b) in self.fields.iter_mut().zip(chunk) {
-            a.merge_chunk(b, cap);
+            a.merge_chunk_with(b, cap, scratch);
         }
     }
 
@@ -680,34 +799,45 @@ impl ChunkCounter {
     /// The chunk's summaries (at most `capacity` entries per field, floor =
     /// largest count dropped); the counter is emptied for the next chunk.
     pub fn finish(&mut self, capacity: usize) -> Vec<ChunkField> {
+        let mut out = Vec::new();
+        self.finish_into(capacity, &mut out);
+        out
+    }
+
+    /// [`ChunkCounter::finish`] into summaries already allocated (those of an
+    /// earlier chunk, whose buffers are reused).
+    pub fn finish_into(&mut self, capacity: usize, out: &mut Vec<ChunkField>) {
         self.row = 0;
-        let mut out = Vec::with_capacity(self.fields.len());
-        for f in &mut self.fields {
-            let mut entries: Vec<(u64, u64, u32, u32)> = f
-                .used
-                .drain(..)
-                .map(|p| {
-                    let s = std::mem::take(&mut f.table[p as usize]);
-                    (s.hash, s.count as u64, s.start, s.len)
-                })
-                .collect();
+        out.resize_with(self.fields.len(), ChunkField::default);
+        for (f, o) in self.fields.iter_mut().zip(out.iter_mut()) {
+            let mut entries = std::mem::take(&mut o.entries);
+            entries.clear();
+            entries.extend(f.used.drain(..).map(|p| {
+                let s = std::mem::take(&mut f.table[p as usize]);
+                (s.hash, s.count as u64, s.start, s.len)
+            }));
             let mut floor = 0;
             if entries.len() > capacity {
                 entries.select_nth_unstable_by_key(capacity, |e| (std::cmp::Reverse(e.1), e.0));
                 floor = entries[capacity..].iter().map(|e| e.1).max().unwrap_or(0);
                 entries.truncate(capacity);
             }
-            let cap = f.text.capacity();
-            let text = std::mem::replace(&mut f.text, Vec::with_capacity(cap));
-            out.push(ChunkField {
+            // In order of hash, as [`FieldSketch::merge_chunk`] walks them
+            // (sorted here, in the worker, rather than in the writer).
+            entries.sort_unstable_by_key(|e| e.0);
+            // The summary takes the text; the counter gets the old summary's
+            // buffer.
+            let mut text = std::mem::take(&mut o.text);
+            text.clear();
+            std::mem::swap(&mut text, &mut f.text);
+            *o = ChunkField {
                 total: f.total,
                 floor,
                 entries,
                 text,
-            });
+            };
             f.total = 0;
         }
-        out
     }
 }
 
@@ -946,6 +1076,33 @@ mod tests {
             g.merge_chunk(&c.finish(capacity));
         }
         g.fields.pop().unwrap()
+    }
+
+    /// Merging chunks by walking hashes in order gives the summary the general
+    /// rule gives, chunk after chunk, whether chunks are truncated or not.
+    #[test]
+    fn merge_chunk_in_hash_order_matches_the_general_rule() {
+        for (capacity, chunk, seed) in [(10, 50, 1), (40, 200, 2), (500, 300, 3), (7, 1, 4)] {
+            let rows = zipf_rows(3000, 6, 400, seed);
+            let mut fast = FieldSketch::default();
+            let mut slow = FieldSketch::default();
+            let mut c = ChunkCounter::new(1);
+            for part in rows.chunks(chunk) {
+                for r in part {
+                    c.next_row();
+                    for &t in r {
+                        c.see(0, tok(t).as_bytes(), h(t));
+                    }
+                }
+                let summary = c.finish(capacity);
+                fast.merge_chunk(&summary[0], capacity);
+                slow.merge_chunk_by_index(&summary[0], capacity);
+                let (mut a, mut b) = (fast.clone(), slow.clone());
+                a.sort();
+                b.sort();
+                assert_eq!(a, b, "capacity {capacity}, chunk {chunk}");
+            }
+        }
     }
 
     /// The guarantees of Space-Saving (Metwally, Agrawal, El Abbadi 2005,

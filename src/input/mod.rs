@@ -8,6 +8,7 @@
 //! [`parse`] turns a chunk into records or counted bad lines.
 
 pub mod parse;
+pub mod pipeline;
 
 use std::fs::File;
 use std::io::{self, BufReader, Read};
@@ -280,6 +281,8 @@ pub struct ChunkReader {
     columns: Option<Arc<parse::Columns>>,
     target: usize,
     label_required: bool,
+    /// A used chunk buffer to fill next instead of a new allocation.
+    spare: Option<Vec<u8>>,
 }
 
 impl ChunkReader {
@@ -308,6 +311,7 @@ impl ChunkReader {
             columns: None,
             target: target.max(1),
             label_required: mode == LabelMode::Required,
+            spare: None,
         };
         r.skip_bom()?;
         if spec.format == Format::Csv {
@@ -433,7 +437,14 @@ impl ChunkReader {
                 _ => return self.skip_record(seq, quoted).map(Some),
             };
             let rest = &self.carry[cut..];
-            let mut next = Vec::with_capacity(self.target + (1 << 16));
+            let mut next = match self.spare.take() {
+                Some(mut v) => {
+                    v.clear();
+                    v
+                }
+                None => Vec::new(),
+            };
+            next.reserve(self.target + (1 << 16));
             next.extend_from_slice(rest);
             let mut data = std::mem::replace(&mut self.carry, next);
             data.truncate(cut);
@@ -448,6 +459,11 @@ impl ChunkReader {
             self.line += memchr::memchr_iter(b'\n', &chunk.data).count() as u64;
             return Ok(Some(chunk));
         }
+    }
+
+    /// Give a used chunk buffer back, to be filled again.
+    pub fn recycle(&mut self, buf: Vec<u8>) {
+        self.spare = Some(buf);
     }
 
     /// Skip one record that outgrew the limit (or an unterminated quoted field at
@@ -551,12 +567,31 @@ pub fn read_inputs(
     progress: Arc<AtomicU64>,
     tx: std::sync::mpsc::SyncSender<ReadMsg>,
 ) {
+    read_inputs_recycling(inputs, spec, mode, progress, tx, None)
+}
+
+/// [`read_inputs`] that fills the chunk buffers sent back on `spare` again
+/// rather than allocating new ones.
+pub fn read_inputs_recycling(
+    inputs: &[String],
+    spec: &InputSpec,
+    mode: LabelMode,
+    progress: Arc<AtomicU64>,
+    tx: std::sync::mpsc::SyncSender<ReadMsg>,
+    spare: Option<std::sync::mpsc::Receiver<Vec<u8>>>,
+) {
     let mut seq = 0u64;
     for (i, path) in inputs.iter().enumerate() {
         let mut run = || -> Result<Option<Fingerprint>> {
             let src = Source::open(path, progress.clone())?;
             let mut r = ChunkReader::new(src, i, spec, mode)?;
-            while let Some(c) = r.next_chunk(seq)? {
+            loop {
+                if let Some(buf) = spare.as_ref().and_then(|s| s.try_recv().ok()) {
+                    r.recycle(buf);
+                }
+                let Some(c) = r.next_chunk(seq)? else {
+                    break;
+                };
                 seq += 1;
                 if tx.send(ReadMsg::Chunk(c)).is_err() {
                     return Ok(None);

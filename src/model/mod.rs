@@ -164,6 +164,13 @@ impl Scorer<'_> {
         let mask = model.dim() - 1;
         out.clear();
         out.resize(m, 0.0);
+        // The weights of a row's buckets lie far apart in a table larger than
+        // the caches: ask for all of them before summing.
+        for &i in x.indices {
+            let j = (i as usize & mask) * m;
+            crate::util::prefetch(&w[j]);
+            crate::util::prefetch(&w[j + m - 1]);
+        }
         for (&i, &v) in x.indices.iter().zip(x.values) {
             let j = i as usize & mask;
             let xv = match &model.idf {
