@@ -113,8 +113,10 @@ impl Drop for Lock {
     }
 }
 
-/// Ask for the cache line holding `x` ahead of its use (a hint: it changes
-/// nothing but timing, and does nothing where unsupported).
+/// Ask for the cache line holding `x` ahead of its use (a hint: it never
+/// faults, writes nothing and changes nothing but timing; it does nothing where
+/// unsupported). Weights and rows are read at random places, so the loads of a
+/// whole block are started before the first is needed.
 #[inline(always)]
 pub fn prefetch<T>(x: &T) {
     #[cfg(target_arch = "x86_64")]

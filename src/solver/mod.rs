@@ -43,6 +43,7 @@ use serde::{Deserialize, Serialize};
 
 use crate::error::{Error, Result};
 use crate::shard::{Row, Shard};
+use crate::util::prefetch;
 
 /// Loss functions of the margin `m = y(w·x + b)`.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize, clap::ValueEnum)]
@@ -517,24 +518,6 @@ impl Linear {
     pub fn averaged_steps(&self) -> u64 {
         self.averaged
     }
-}
-
-/// Ask the processor to start loading the cache line that holds `x` into its
-/// caches. A hint only: it never faults, writes nothing and cannot change a
-/// result. Weights are read at random positions (hashed buckets), so the loads of
-/// a whole block of rows are started before the first is needed.
-#[inline(always)]
-fn prefetch<T>(x: &T) {
-    #[cfg(target_arch = "x86_64")]
-    // SAFETY: `_mm_prefetch` is a cache hint with no memory effect; SSE is part
-    // of the x86_64 baseline, and the address comes from a live reference.
-    unsafe {
-        std::arch::x86_64::_mm_prefetch::<{ std::arch::x86_64::_MM_HINT_T0 }>(
-            x as *const T as *const i8,
-        )
-    }
-    #[cfg(not(target_arch = "x86_64"))]
-    let _ = x;
 }
 
 /// Start loading a row's indices and values (up to 32 entries each).
