@@ -88,7 +88,9 @@ fn json_report_has_every_stage_and_keeps_files() {
     // The random-reads limit: 1 and 2 threads, reads per second measured.
     let reads = stages(&r, "random-reads");
     assert_eq!(reads.len(), 2, "{reads:?}");
-    assert!(reads.iter().all(|st| st["nnz_per_second"].as_f64().unwrap() > 0.0));
+    assert!(reads
+        .iter()
+        .all(|st| st["nnz_per_second"].as_f64().unwrap() > 0.0));
     // The stage's checkpoint is removed once measured.
     assert!(names_in(&keep).iter().all(|n| !n.ends_with(".tmc")));
     // The kept folder: input, the 6-class and binary datasets (the 1-thread copy,
