@@ -7,23 +7,12 @@
 //! Run: `cargo bench --bench ingest`.
 
 use criterion::{criterion_group, criterion_main, Criterion, Throughput};
-use tamis::features::{FeatureConfig, Featurizer, HASH_SCHEME};
+use tamis::features::{FeatureConfig, Featurizer};
 use tamis::input::{parse_chunk, Chunk, InputSpec, LabelMode, ParseScratch};
 use tamis::synth::{Synth, SynthConfig};
 
 fn config() -> FeatureConfig {
-    FeatureConfig {
-        scheme: HASH_SCHEME.into(),
-        hash_seed: 1,
-        log2_buckets: 20,
-        ngrams: 2,
-        char_ngrams: None,
-        raw_counts: false,
-        text_fields: vec!["text".into()],
-        numeric_fields: vec![],
-        mask_digits: false,
-        mask_emails: false,
-    }
+    FeatureConfig::plain(1, 20)
 }
 
 fn corpus() -> Vec<(&'static str, Vec<u8>)> {

@@ -8,7 +8,7 @@
 //! Run: `cargo bench --bench shard`.
 
 use criterion::{criterion_group, criterion_main, Criterion, Throughput};
-use tamis::features::{FeatureConfig, Featurizer, HASH_SCHEME};
+use tamis::features::{FeatureConfig, Featurizer};
 use tamis::shard::{Shard, ShardWriter};
 use tamis::solver::order::Interleave;
 use tamis::synth::{Synth, SynthConfig};
@@ -23,18 +23,7 @@ fn text() -> Vec<u8> {
 }
 
 fn write_shard(path: &std::path::Path) {
-    let cfg = FeatureConfig {
-        scheme: HASH_SCHEME.into(),
-        hash_seed: 1,
-        log2_buckets: 20,
-        ngrams: 2,
-        char_ngrams: None,
-        raw_counts: false,
-        text_fields: vec!["text".into()],
-        numeric_fields: vec![],
-        mask_digits: false,
-        mask_emails: false,
-    };
+    let cfg = FeatureConfig::plain(1, 20);
     let mut f = Featurizer::new(&cfg).unwrap();
     let mut w = ShardWriter::with_capacity(path, 1 << 20, 1 << 24).unwrap();
     let (mut idx, mut val) = (Vec::new(), Vec::new());

@@ -7,24 +7,13 @@
 //! Run: `cargo bench --bench train`.
 
 use criterion::{criterion_group, criterion_main, Criterion, Throughput};
-use tamis::features::{FeatureConfig, Featurizer, HASH_SCHEME};
+use tamis::features::{FeatureConfig, Featurizer};
 use tamis::solver::order::Interleave;
 use tamis::solver::{scores, Loss, MemRows, Rows, SolverConfig, Target, Trainer};
 use tamis::synth::{Synth, SynthConfig, LABELS};
 
 fn rows(n: u64) -> MemRows {
-    let cfg = FeatureConfig {
-        scheme: HASH_SCHEME.into(),
-        hash_seed: 1,
-        log2_buckets: 20,
-        ngrams: 2,
-        char_ngrams: None,
-        raw_counts: false,
-        text_fields: vec!["text".into()],
-        numeric_fields: vec![],
-        mask_digits: false,
-        mask_emails: false,
-    };
+    let cfg = FeatureConfig::plain(1, 20);
     let mut f = Featurizer::new(&cfg).unwrap();
     let mut text = Vec::new();
     Synth::new(SynthConfig::default())

@@ -19,8 +19,7 @@ use rand_chacha::ChaCha8Rng;
 use xxhash_rust::xxh3::xxh3_64_with_seed;
 
 use tamis::features::{
-    bucket_sign, field_seed, tokenize, CharNgrams, FeatureConfig, Featurizer, HASH_SCHEME,
-    MAX_TOKEN_BYTES,
+    bucket_sign, field_seed, tokenize, CharNgrams, FeatureConfig, Featurizer, MAX_TOKEN_BYTES,
 };
 
 /// Deterministic proptest settings: a fixed seed, so a run fails only for a
@@ -271,16 +270,8 @@ fn reference_row(
 
 fn config(hash_seed: u64, log2: u32, ngrams: u32) -> FeatureConfig {
     FeatureConfig {
-        scheme: HASH_SCHEME.into(),
-        hash_seed,
-        log2_buckets: log2,
         ngrams,
-        char_ngrams: None,
-        raw_counts: false,
-        text_fields: vec!["text".into()],
-        numeric_fields: vec![],
-        mask_digits: false,
-        mask_emails: false,
+        ..FeatureConfig::plain(hash_seed, log2)
     }
 }
 

@@ -402,20 +402,9 @@ fn clouds(seed: u64, n: usize) -> MemRows {
 /// `tamis::synth::Synth`, hashed by `tamis::features::Featurizer`
 /// (unigrams + bigrams, L2-normalised rows). Returns (train, validation).
 fn text_problem(n_train: usize, n_valid: usize, log2_buckets: u32) -> (MemRows, MemRows) {
-    use tamis::features::{FeatureConfig, Featurizer, HASH_SCHEME};
+    use tamis::features::{FeatureConfig, Featurizer};
     use tamis::synth::{Synth, SynthConfig, LABELS};
-    let cfg = FeatureConfig {
-        scheme: HASH_SCHEME.into(),
-        hash_seed: 3,
-        log2_buckets,
-        ngrams: 2,
-        char_ngrams: None,
-        raw_counts: false,
-        text_fields: vec!["text".into()],
-        numeric_fields: vec![],
-        mask_digits: false,
-        mask_emails: false,
-    };
+    let cfg = FeatureConfig::plain(3, log2_buckets);
     let mut f = Featurizer::new(&cfg).unwrap();
     let mut synth = Synth::new(SynthConfig {
         seed: 21,

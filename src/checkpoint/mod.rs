@@ -325,21 +325,9 @@ fn open(path: &Path) -> Result<Container<container::FileBytes>> {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::features::HASH_SCHEME;
 
     pub(crate) fn sample() -> Checkpoint {
-        let features = FeatureConfig {
-            scheme: HASH_SCHEME.into(),
-            hash_seed: 7,
-            log2_buckets: 10,
-            ngrams: 2,
-            char_ngrams: None,
-            raw_counts: false,
-            text_fields: vec!["text".into()],
-            numeric_fields: vec![],
-            mask_digits: false,
-            mask_emails: false,
-        };
+        let features = FeatureConfig::plain(7, 10);
         let d = 1 << 10;
         let models = (0..3)
             .map(|k| {

@@ -331,7 +331,6 @@ fn find_sum(bytes: &[u8]) -> Option<usize> {
 #[cfg(test)]
 pub(crate) mod tests {
     use super::*;
-    use crate::features::HASH_SCHEME;
 
     pub(crate) fn sample() -> Manifest {
         Manifest {
@@ -339,18 +338,7 @@ pub(crate) mod tests {
             format: FORMAT_NAME.into(),
             format_version: VERSION,
             written_by: "test".into(),
-            features: FeatureConfig {
-                scheme: HASH_SCHEME.into(),
-                hash_seed: 3,
-                log2_buckets: 12,
-                ngrams: 2,
-                char_ngrams: None,
-                raw_counts: false,
-                text_fields: vec!["text".into()],
-                numeric_fields: vec![],
-                mask_digits: false,
-                mask_emails: false,
-            },
+            features: FeatureConfig::plain(3, 12),
             positive: Some("spam".into()),
             split: SplitRule {
                 rule: "xxh3-content".into(),

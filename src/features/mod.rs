@@ -116,6 +116,24 @@ fn is_false(b: &bool) -> bool {
 }
 
 impl FeatureConfig {
+    /// The default settings of `ingest` for one text field named `text` (TSV
+    /// input): word pairs, damped and normalised counts, no character n-grams,
+    /// no masks; with the given hashing seed and number of buckets.
+    pub fn plain(hash_seed: u64, log2_buckets: u32) -> Self {
+        FeatureConfig {
+            scheme: HASH_SCHEME.into(),
+            hash_seed,
+            log2_buckets,
+            ngrams: 2,
+            char_ngrams: None,
+            raw_counts: false,
+            text_fields: vec!["text".into()],
+            numeric_fields: vec![],
+            mask_digits: false,
+            mask_emails: false,
+        }
+    }
+
     /// Check ranges.
     pub fn validate(&self) -> Result<()> {
         if self.scheme != HASH_SCHEME {
@@ -1128,18 +1146,7 @@ mod tests {
     use super::*;
 
     fn cfg() -> FeatureConfig {
-        FeatureConfig {
-            scheme: HASH_SCHEME.into(),
-            hash_seed: 7,
-            log2_buckets: 18,
-            ngrams: 2,
-            char_ngrams: None,
-            raw_counts: false,
-            text_fields: vec!["text".into()],
-            numeric_fields: vec![],
-            mask_digits: false,
-            mask_emails: false,
-        }
+        FeatureConfig::plain(7, 18)
     }
 
     fn toks(s: &[u8]) -> (Vec<String>, u32) {
