@@ -240,21 +240,7 @@ fn several_fields_and_numbers_follow_the_record_score_reads() {
     ingest(
         &[&fixture("inbox.jsonl")],
         &dir,
-        &[
-            "--format",
-            "jsonl",
-            "--label-field",
-            "tag",
-            "--text-field",
-            "subject",
-            "--text-field",
-            "body",
-            "--numeric-field",
-            "attachments",
-            "--log2-buckets",
-            "14",
-            "-q",
-        ],
+        &[&JSONL_FIELDS[..], &["--log2-buckets", "14", "-q"]].concat(),
     )
     .ok();
     let m = t.path().join("json.tmm");

@@ -76,18 +76,6 @@ const CSV_FIELDS: [&str; 6] = [
     "--text-column",
     "body",
 ];
-const JSONL_FIELDS: [&str; 10] = [
-    "--format",
-    "jsonl",
-    "--label-field",
-    "tag",
-    "--text-field",
-    "subject",
-    "--text-field",
-    "body",
-    "--numeric-field",
-    "attachments",
-];
 
 fn label_map(v: &[(&str, u64)]) -> BTreeMap<String, u64> {
     v.iter().map(|(k, n)| (k.to_string(), *n)).collect()

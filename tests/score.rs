@@ -160,21 +160,7 @@ fn records_of_csv_and_json_lines_are_placed_at_their_first_line() {
     ingest(
         &[&fixture("inbox.jsonl")],
         &jsonl,
-        &[
-            "--format",
-            "jsonl",
-            "--label-field",
-            "tag",
-            "--text-field",
-            "subject",
-            "--text-field",
-            "body",
-            "--numeric-field",
-            "attachments",
-            "--log2-buckets",
-            "16",
-            "-q",
-        ],
+        &[&JSONL_FIELDS[..], &["--log2-buckets", "16", "-q"]].concat(),
     )
     .ok();
     train(&jsonl, &model, &["-q"]).ok();

@@ -194,6 +194,21 @@ pub fn tamis_closed_stdout(args: &[&str]) -> (Option<i32>, String) {
     )
 }
 
+/// `ingest` options for `fixtures/inbox.jsonl`: label `tag`, text fields
+/// `subject` and `body`, numeric field `attachments`.
+pub const JSONL_FIELDS: [&str; 10] = [
+    "--format",
+    "jsonl",
+    "--label-field",
+    "tag",
+    "--text-field",
+    "subject",
+    "--text-field",
+    "body",
+    "--numeric-field",
+    "attachments",
+];
+
 /// `tamis ingest INPUTS... --out OUT EXTRA...`
 pub fn ingest(inputs: &[&Path], out: &Path, extra: &[&str]) -> Out {
     let mut args: Vec<std::ffi::OsString> = vec!["ingest".into()];
