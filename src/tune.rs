@@ -273,15 +273,18 @@ fn run(
             epoch,
             batch: opts.batch,
         };
-        sweep.run((0, 0), |view, batch, _, _| {
-            let tallies = lanes.step(view, batch, average);
-            for (c, s) in sums.iter_mut().enumerate() {
-                for t in &tallies[c * per..(c + 1) * per] {
-                    s.loss += t.loss;
+        let per_stretch = train::stretch_batches(opts.batch, 1, 0, usize::MAX);
+        sweep.run((0, 0), per_stretch, |views, stretch| {
+            train::each_batch(views, stretch, 0, 1, |view, batch| {
+                let tallies = lanes.step(view, batch, average);
+                for (c, s) in sums.iter_mut().enumerate() {
+                    for t in &tallies[c * per..(c + 1) * per] {
+                        s.loss += t.loss;
+                    }
+                    s.rows += tallies[c * per].rows;
+                    s.nnz += tallies[c * per].nnz;
                 }
-                s.rows += tallies[c * per].rows;
-                s.nnz += tallies[c * per].nnz;
-            }
+            });
             Ok(true)
         })?;
         let seconds = t0.elapsed().as_secs_f64();
@@ -342,6 +345,8 @@ fn run(
                     idf: opts.idf,
                     patience: None,
                     init_from: None,
+                    replicas: 1,
+                    sync_every: 0,
                 };
                 train::build_model(
                     m,

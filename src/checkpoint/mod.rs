@@ -68,6 +68,10 @@ pub struct Position {
     pub taken: u64,
     /// Solver steps taken so far (the step counter `t`).
     pub step: u64,
+    /// Rounds of steps the replicas have taken since they last mixed (0 with
+    /// one replica, and at every epoch end).
+    #[serde(default)]
+    pub since_mix: u64,
 }
 
 /// A shard in use by the run, as the manifest listed it.
@@ -166,14 +170,15 @@ pub struct WriteCost {
 impl Checkpoint {
     /// Write atomically to `path` (temporary file, fsync, rename, folder fsync).
     pub fn save(&self, path: &Path) -> Result<WriteCost> {
-        Self::write(path, &self.meta, &self.models, self.idf.as_deref())
+        let models: Vec<&Linear> = self.models.iter().collect();
+        Self::write(path, &self.meta, &models, self.idf.as_deref())
     }
 
     /// Write a checkpoint from borrowed parts (saves copying the weights).
     pub fn write(
         path: &Path,
         meta: &CheckpointMeta,
-        models: &[Linear],
+        models: &[&Linear],
         idf: Option<&[f32]>,
     ) -> Result<WriteCost> {
         let start = Instant::now();
@@ -247,10 +252,11 @@ impl Checkpoint {
             .map_err(|e| bad(e.to_string()))?;
         let [m, d, has_idf, _] = c.header().params;
         let dim = meta.features.buckets() as u64;
+        // Every replica's models, one replica after the other.
         let want_models = match meta.positive {
             Some(_) => 1,
             None => meta.labels.len() as u64,
-        };
+        } * u64::from(meta.settings.replicas.max(1));
         if d != dim || m != want_models || m == 0 {
             return Err(bad(format!(
                 "header says {m} model(s) of {d} features; the metadata needs {want_models} of {dim}"
@@ -367,12 +373,15 @@ mod tests {
                         model: "yesterday.tmm".into(),
                         steps: 123,
                     }),
+                    replicas: 1,
+                    sync_every: 0,
                 },
                 position: Position {
                     epoch: 1,
                     group: 2,
                     taken: 300,
                     step: 9999,
+                    since_mix: 0,
                 },
                 epoch_sums: EpochSums {
                     loss: 0.1 + 0.7,

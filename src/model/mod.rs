@@ -96,6 +96,18 @@ pub struct TrainSettings {
     /// The model this run started from (`--init-from`), if any.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub init_from: Option<WarmStart>,
+    /// Replicas of the models trained side by side on alternate batches and
+    /// replaced by their mean every `sync_every` rows (1: a single copy).
+    #[serde(default = "one")]
+    pub replicas: u32,
+    /// Training rows (all replicas together) between two mixes of the
+    /// replicas; every epoch also ends with one. 0 with one replica.
+    #[serde(default)]
+    pub sync_every: u64,
+}
+
+fn one() -> u32 {
+    1
 }
 
 /// Where a warm start came from.

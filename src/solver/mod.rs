@@ -34,6 +34,7 @@
 //! `(U + B·v)/K` after `K` averaged steps, and this is the model written.
 
 pub mod lanes;
+pub mod mix;
 pub mod order;
 
 use std::time::Instant;
@@ -680,7 +681,7 @@ type MarginBlock<'a> = (&'a mut [f64], &'a mut [[u32; RANGES + 1]]);
 /// hand-over costs more than it saves). So every [`Chooser::EVERY`] steps both
 /// ways are timed on alternating runs of [`Chooser::TRIAL`] steps, and the
 /// faster per nonzero is used until the next trial.
-#[derive(Debug, Default)]
+#[derive(Debug, Clone, Default)]
 struct Chooser {
     /// Steps recorded so far.
     steps: u64,
@@ -730,6 +731,7 @@ impl Chooser {
 
 /// Training state of all models of a task (one for binary, one per class for
 /// one-vs-rest), sharing one read of each row.
+#[derive(Clone)]
 pub struct Trainer {
     /// The models.
     pub models: Vec<Linear>,
@@ -738,13 +740,20 @@ pub struct Trainer {
     pub class_weights: Vec<f64>,
     /// Configuration.
     pub cfg: SolverConfig,
-    /// Steps taken so far.
+    /// Steps taken so far: batches, counted over all replicas (a replica
+    /// advances it by [`Trainer::stride`] a step).
     pub t: u64,
+    /// Replicas taking batches in turn (1: a single copy); see
+    /// [`Trainer::set_stride`].
+    stride: u64,
     idf: Option<Vec<f32>>,
     coefs: Vec<Vec<f64>>,
     margins: Vec<f64>,
     splits: Vec<[u32; RANGES + 1]>,
     chooser: Chooser,
+    /// Keep a binary step's parallel parts on the calling thread (replicas that
+    /// already run side by side).
+    solo: bool,
 }
 
 /// Sums gathered while training on a batch or evaluating a set.
@@ -784,6 +793,8 @@ impl Trainer {
             margins: Vec::new(),
             splits: Vec::new(),
             chooser: Chooser::default(),
+            solo: false,
+            stride: 1,
         })
     }
 
@@ -805,8 +816,8 @@ impl Trainer {
     /// row order, models in parallel, so the result does not depend on the
     /// number of threads.
     pub fn step<R: Rows + ?Sized>(&mut self, rows: &R, batch: &[usize], average: bool) -> Tally {
-        self.t += 1;
-        let eta = self.cfg.eta(self.t - 1);
+        let eta = self.eta();
+        self.t += self.stride;
         let cfg = &self.cfg;
         let idf = self.idf.as_deref();
         let weights = &self.class_weights;
@@ -832,7 +843,7 @@ impl Trainer {
             self.margins.clear();
             self.splits.clear();
             self.margins.resize(xs.len(), 0.0);
-            let on_pool = parallel && self.chooser.on_pool();
+            let on_pool = parallel && !self.solo && self.chooser.on_pool();
             let timer = parallel.then(Instant::now);
             if parallel {
                 self.splits.resize(xs.len(), [0; RANGES + 1]);
@@ -904,6 +915,50 @@ impl Trainer {
         Tally {
             loss: losses.iter().sum(),
             ..tally
+        }
+    }
+
+    /// Make this trainer one of `replicas` that take batches in turn and are
+    /// mixed (averaged) now and then. Each step then advances the step counter
+    /// by `replicas`, and the step size follows the rounds of `R` batches:
+    /// `ηₜ = 1/(λ(t/R + t₀))`, so each replica takes the steps a single copy
+    /// would take on its own share of the rows. (Steps `R` times as large, so
+    /// that a round's mean move matched `R` steps of one copy, were measured
+    /// to do worse: like a larger batch, they leave the iterates noisier.) One
+    /// replica is the plain schedule.
+    pub fn set_stride(&mut self, replicas: usize) {
+        self.stride = replicas.max(1) as u64;
+    }
+
+    /// The step size of the next step.
+    fn eta(&self) -> f64 {
+        if self.stride == 1 {
+            return self.cfg.eta(self.t);
+        }
+        let rounds = self.t as f64 / self.stride as f64;
+        1.0 / (self.cfg.lambda * (rounds + self.cfg.t0()))
+    }
+
+    /// Keep the parallel parts of binary steps on the calling thread (`true`),
+    /// or let them use the rayon pool when that is measured to be faster
+    /// (`false`, the default). The numbers are the same either way; replicas
+    /// that run side by side set it, since the pool is busy with the others.
+    pub fn set_solo(&mut self, solo: bool) {
+        self.solo = solo;
+    }
+
+    /// A step without rows: the step counter advances and, when averaging, the
+    /// current iterate is counted once more in the average, with no shrink and
+    /// no update. A replica with no batch in the last round of a stretch holds,
+    /// so that every replica has taken the same number of steps when they mix.
+    pub fn hold(&mut self, average: bool) {
+        self.t += self.stride;
+        if average {
+            for m in &mut self.models {
+                m.big_b += m.s;
+                m.bias_sum += m.b;
+                m.averaged += 1;
+            }
         }
     }
 
