@@ -123,11 +123,12 @@ pub struct TrainOptions {
     /// end). Without it, only an interruption writes one, to
     /// [`default_checkpoint`] of the model.
     pub checkpoint: Option<PathBuf>,
-    /// Seconds between checkpoints; 0 writes one after every step.
+    /// Seconds between checkpoints; 0 writes one after every stretch of the
+    /// epoch (at most 16,384 rows).
     pub checkpoint_every: f64,
     /// Start from the weights of this model (warm start).
     pub init_from: Option<PathBuf>,
-    /// When set (by a signal handler), the run finishes its step, writes a
+    /// When set (by a signal handler), the run finishes its stretch, writes a
     /// checkpoint and returns [`Outcome::Stopped`].
     pub stop: Option<Arc<AtomicBool>>,
 }

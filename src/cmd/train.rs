@@ -91,7 +91,8 @@ pub struct Args {
     #[arg(long, value_name = "FILE")]
     pub checkpoint: Option<PathBuf>,
 
-    /// Seconds between checkpoints; 0 saves after every step (slow) [default: 60].
+    /// Seconds between checkpoints; 0 saves after every stretch of at most 16,384
+    /// rows (slow) [default: 60].
     #[arg(long, value_name = "SECONDS")]
     pub checkpoint_every: Option<f64>,
 
