@@ -130,6 +130,77 @@ pub fn prefetch<T>(x: &T) {
     let _ = x;
 }
 
+/// Append `x` with six decimals, exactly as `format!("{x:.6}")` writes it (the
+/// exact binary value rounded half to even, the sign kept for negative values
+/// that round to zero), without the formatting machinery: for scoring's output,
+/// where it took a tenth of the time. Values it has no fast path for (not
+/// finite, or 2^53 and beyond) go through `format!`.
+pub fn push_fixed6(out: &mut Vec<u8>, x: f64) {
+    let Some(units) = fixed6_units(x) else {
+        use std::io::Write as _;
+        let _ = write!(out, "{x:.6}");
+        return;
+    };
+    if x.is_sign_negative() {
+        out.push(b'-');
+    }
+    let (int, frac) = (units / 1_000_000, (units % 1_000_000) as u32);
+    let mut digits = [0u8; 40];
+    let mut n = digits.len();
+    let mut v = int;
+    loop {
+        n -= 1;
+        digits[n] = b'0' + (v % 10) as u8;
+        v /= 10;
+        if v == 0 {
+            break;
+        }
+    }
+    out.extend_from_slice(&digits[n..]);
+    out.push(b'.');
+    let mut f = [b'0'; 6];
+    let mut v = frac;
+    for d in f.iter_mut().rev() {
+        *d = b'0' + (v % 10) as u8;
+        v /= 10;
+    }
+    out.extend_from_slice(&f);
+}
+
+/// `|x|·10⁶` rounded half to even, for finite `|x| < 2^53`.
+fn fixed6_units(x: f64) -> Option<u128> {
+    if !x.is_finite() || x.abs() >= 9_007_199_254_740_992.0 {
+        return None;
+    }
+    let bits = x.to_bits();
+    let exp = ((bits >> 52) & 0x7ff) as i32;
+    let frac = bits & ((1u64 << 52) - 1);
+    // |x| = m·2^e exactly.
+    let (m, e) = if exp == 0 {
+        (frac, -1074)
+    } else {
+        (frac | (1u64 << 52), exp - 1075)
+    };
+    let n = u128::from(m) * 1_000_000;
+    if e >= 0 {
+        // |x| < 2^53 with e ≥ 0 means m·2^e < 2^53: no overflow.
+        return Some(n << e);
+    }
+    let k = (-e) as u32;
+    if k >= 80 {
+        // n < 2^73, so n/2^k < 1/2^7: rounds to zero.
+        return Some(0);
+    }
+    let q = n >> k;
+    let rem = n & ((1u128 << k) - 1);
+    let half = 1u128 << (k - 1);
+    Some(if rem > half || (rem == half && q & 1 == 1) {
+        q + 1
+    } else {
+        q
+    })
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -162,5 +233,59 @@ mod tests {
     #[test]
     fn rss_anon_reads() {
         assert!(rss_anon().unwrap() > 0);
+    }
+
+    /// The fast six-decimal formatting writes what the standard library's
+    /// `{:.6}` writes (the reference), on ties, signs, tiny and large values,
+    /// and random bit patterns.
+    #[test]
+    fn fixed6_matches_the_standard_formatting() {
+        use rand::{Rng, SeedableRng};
+        let check = |x: f64| {
+            let mut got = Vec::new();
+            super::push_fixed6(&mut got, x);
+            assert_eq!(String::from_utf8(got).unwrap(), format!("{x:.6}"), "{x:e}");
+        };
+        // Exact ties at the sixth decimal: k/2^7 ·10⁶ ends in .5.
+        for k in 0..512 {
+            check(k as f64 / 128.0);
+            check(-(k as f64) / 128.0);
+        }
+        for x in [
+            0.0,
+            -0.0,
+            1e-9,
+            -1e-9,
+            5e-7,
+            -5e-7,
+            4.9999999e-7,
+            0.1,
+            0.5,
+            1.0,
+            2.5,
+            -2.5,
+            123.456789,
+            999999.9999995,
+            1e15,
+            -1e15,
+            9.007199254740991e15,
+            9.1e15,
+            1e300,
+            f64::MIN_POSITIVE,
+            5e-324,
+            f64::NAN,
+            f64::INFINITY,
+            f64::NEG_INFINITY,
+        ] {
+            check(x);
+        }
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(6);
+        for _ in 0..30_000 {
+            check(rng.random_range(-50.0..50.0));
+            check(f64::from_bits(rng.random::<u64>()));
+            // Values close to a tie.
+            let q: i64 = rng.random_range(-10_000_000..10_000_000);
+            check((q as f64 + 0.5) / 1e6);
+        }
     }
 }

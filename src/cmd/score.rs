@@ -8,6 +8,7 @@ use anyhow::{bail, Context};
 use tamis::input::{Format, InputSpec, LabelMode};
 use tamis::model::Model;
 use tamis::score::{self, OutcomeRef};
+use tamis::util::push_fixed6;
 
 /// Output formats of `tamis score`.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum)]
@@ -193,9 +194,16 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
                     } else {
                         write!(b, "{line}")
                     }
-                    .and_then(|_| match probability.filter(|_| show_p) {
-                        Some(p) => writeln!(b, "\t{label}\t{score:.6}\t{p:.6}"),
-                        None => writeln!(b, "\t{label}\t{score:.6}"),
+                    .map(|_| {
+                        b.push(b'\t');
+                        b.extend_from_slice(label.as_bytes());
+                        b.push(b'\t');
+                        push_fixed6(b, score);
+                        if let Some(p) = probability.filter(|_| show_p) {
+                            b.push(b'\t');
+                            push_fixed6(b, p);
+                        }
+                        b.push(b'\n');
                     })
                 }
                 (
@@ -211,10 +219,20 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
                 ) => {
                     l.scored += 1;
                     let place = place(input, line);
-                    match probability.filter(|_| show_p) {
-                        Some(p) => writeln!(b, "{{\"where\":{},\"label\":{},\"score\":{score:.6},\"probability\":{p:.6}}}", json_str(&place), json_str(label)),
-                        None => writeln!(b, "{{\"where\":{},\"label\":{},\"score\":{score:.6}}}", json_str(&place), json_str(label)),
-                    }
+                    write!(
+                        b,
+                        "{{\"where\":{},\"label\":{},\"score\":",
+                        json_str(&place),
+                        json_str(label)
+                    )
+                    .map(|_| {
+                        push_fixed6(b, score);
+                        if let Some(p) = probability.filter(|_| show_p) {
+                            b.extend_from_slice(b",\"probability\":");
+                            push_fixed6(b, p);
+                        }
+                        b.extend_from_slice(b"}\n");
+                    })
                 }
                 (
                     OutcomeRef::Skipped {
