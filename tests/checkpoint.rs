@@ -91,22 +91,32 @@ fn signal(child: &Child, sig: &str) {
     assert!(st.success());
 }
 
-/// Kill the training with SIGKILL at random moments, resume after each kill,
-/// and compare the final model byte for byte with an uninterrupted run.
-#[test]
-fn sigkill_at_random_moments_then_resume_gives_the_same_model() {
-    let t = tmp();
-    let ds = dataset(t.path(), "ds", 3000, &[]);
-    let settings = ["--epochs", "3", "--batch", "64", "--seed", "5", "--quiet"];
-    let reference = t.path().join("reference.tmm");
-    train(&ds, &reference, &settings).ok();
+/// What a run killed at random moments went through.
+struct Kills {
+    kills: u32,
+    /// Kills that left a checkpoint's temporary file behind.
+    during_write: u32,
+    epochs_hit: std::collections::BTreeSet<u64>,
+    steps_hit: std::collections::BTreeSet<u64>,
+    /// Kills after which the checkpoint stood between two mixes of replicas.
+    between_mixes: u32,
+}
 
-    let model = t.path().join("model.tmm");
-    let ck = t.path().join("run.tmc");
-    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(20261202);
-    let (mut kills, mut during_write) = (0u32, 0u32);
-    let mut epochs_hit = std::collections::BTreeSet::new();
-    let mut steps_hit = std::collections::BTreeSet::new();
+/// Train `ds` with `settings` into `dir/model.tmm`, killing the run with SIGKILL
+/// at random moments and resuming it after each kill (alternating 1 and 2
+/// threads, a checkpoint after every stretch), until it finishes; return what
+/// the kills hit and the final model's bytes.
+fn kill_and_resume(dir: &Path, ds: &Path, settings: &[&str], seed: u64) -> (Kills, Vec<u8>) {
+    let model = dir.join("model.tmm");
+    let ck = dir.join("run.tmc");
+    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(seed);
+    let mut k = Kills {
+        kills: 0,
+        during_write: 0,
+        epochs_hit: Default::default(),
+        steps_hit: Default::default(),
+        between_mixes: 0,
+    };
     let mut finished = false;
     for run in 0..600 {
         // Alternate thread counts: the state must not depend on them.
@@ -116,7 +126,7 @@ fn sigkill_at_random_moments_then_resume_gives_the_same_model() {
         } else {
             let mut a: Vec<String> = vec![
                 "train".into(),
-                s(&ds).into(),
+                s(ds).into(),
                 "--model".into(),
                 s(&model).into(),
                 "--checkpoint".into(),
@@ -125,8 +135,8 @@ fn sigkill_at_random_moments_then_resume_gives_the_same_model() {
             a.extend(settings.iter().map(|x| x.to_string()));
             a
         };
-        // A checkpoint after every step: most of the time goes into writing them,
-        // so kills land inside writes as well as between them.
+        // A checkpoint after every stretch: most of the time goes into writing
+        // them, so kills land inside writes as well as between them.
         args.extend([
             "--checkpoint-every".into(),
             "0".into(),
@@ -167,40 +177,111 @@ fn sigkill_at_random_moments_then_resume_gives_the_same_model() {
             None => {
                 child.kill().unwrap();
                 child.wait().unwrap();
-                kills += 1;
-                if !temp_files(t.path()).is_empty() {
-                    during_write += 1;
+                k.kills += 1;
+                if !temp_files(dir).is_empty() {
+                    k.during_write += 1;
                 }
                 if ck.exists() {
                     let p = position(&ck);
-                    epochs_hit.insert(p["epoch"].as_u64().unwrap());
-                    steps_hit.insert(p["step"].as_u64().unwrap());
+                    k.epochs_hit.insert(p["epoch"].as_u64().unwrap());
+                    k.steps_hit.insert(p["step"].as_u64().unwrap());
+                    if p["since_mix"].as_u64().unwrap_or(0) > 0 {
+                        k.between_mixes += 1;
+                    }
                 }
             }
         }
     }
-    assert!(finished, "the run never finished after {kills} kills");
-    assert!(kills >= 20, "only {kills} kills");
-    assert!(
-        steps_hit.len() >= 20,
-        "kills at only {} positions",
-        steps_hit.len()
+    assert!(finished, "the run never finished after {} kills", k.kills);
+    // Temporary files of killed writers are cleaned up by the next run.
+    assert_eq!(temp_files(dir), Vec::<String>::new());
+    eprintln!(
+        "{} kills ({} inside checkpoint writes, {} between mixes) at {} positions in epochs {:?}",
+        k.kills,
+        k.during_write,
+        k.between_mixes,
+        k.steps_hit.len(),
+        k.epochs_hit
     );
-    assert!(epochs_hit.len() >= 3, "kills in epochs {epochs_hit:?} only");
+    (k, std::fs::read(&model).unwrap())
+}
+
+/// Kill the training with SIGKILL at random moments, resume after each kill,
+/// and compare the final model byte for byte with an uninterrupted run.
+#[test]
+fn sigkill_at_random_moments_then_resume_gives_the_same_model() {
+    let t = tmp();
+    let ds = dataset(t.path(), "ds", 3000, &[]);
+    let settings = ["--epochs", "3", "--batch", "64", "--seed", "5", "--quiet"];
+    let reference = t.path().join("reference.tmm");
+    train(&ds, &reference, &settings).ok();
+    let (k, model) = kill_and_resume(t.path(), &ds, &settings, 20261202);
+    assert!(k.kills >= 20, "only {} kills", k.kills);
     assert!(
-        during_write >= 1,
+        k.steps_hit.len() >= 20,
+        "kills at only {} positions",
+        k.steps_hit.len()
+    );
+    assert!(
+        k.epochs_hit.len() >= 3,
+        "kills in epochs {:?} only",
+        k.epochs_hit
+    );
+    assert!(
+        k.during_write >= 1,
         "no kill landed inside a checkpoint write"
     );
     assert_eq!(
-        std::fs::read(&model).unwrap(),
+        model,
         std::fs::read(&reference).unwrap(),
-        "resumed model differs from the uninterrupted one after {kills} kills ({during_write} inside writes)"
+        "resumed model differs from the uninterrupted one after {} kills ({} inside writes)",
+        k.kills,
+        k.during_write
     );
-    // Temporary files of killed writers are cleaned up by the next run.
-    assert_eq!(temp_files(t.path()), Vec::<String>::new());
-    eprintln!(
-        "{kills} kills ({during_write} inside checkpoint writes) at {} positions in epochs {epochs_hit:?}",
-        steps_hit.len()
+}
+
+/// The same with replicas that mix every few stretches: a checkpoint taken
+/// between two mixes holds replicas that differ, and the run resumed from it
+/// (with either thread count) still ends on the uninterrupted run's model.
+#[test]
+fn sigkill_between_mixes_of_replicas_then_resume_gives_the_same_model() {
+    let t = tmp();
+    let ds = dataset(t.path(), "ds", 3000, &[]);
+    // Odd replicas, so that rounds end with a replica holding; batches of 16
+    // and a mix every 300 rows (rounded up to whole stretches) give several
+    // stretches between mixes.
+    let settings = [
+        "--epochs",
+        "3",
+        "--batch",
+        "16",
+        "--seed",
+        "5",
+        "--replicas",
+        "3",
+        "--sync-every",
+        "300",
+        "--quiet",
+    ];
+    let reference = t.path().join("reference.tmm");
+    train(&ds, &reference, &settings).ok();
+    let (k, model) = kill_and_resume(t.path(), &ds, &settings, 7);
+    assert!(k.kills >= 20, "only {} kills", k.kills);
+    assert!(
+        k.epochs_hit.len() >= 3,
+        "kills in epochs {:?} only",
+        k.epochs_hit
+    );
+    assert!(
+        k.between_mixes >= 3,
+        "only {} kills found the replicas between two mixes",
+        k.between_mixes
+    );
+    assert_eq!(
+        model,
+        std::fs::read(&reference).unwrap(),
+        "resumed model differs from the uninterrupted one after {} kills",
+        k.kills
     );
 }
 
