@@ -70,21 +70,32 @@ impl<R: Rows> Rows for Group<'_, R> {
 /// they come off the disk or the page cache in one sequential piece.
 pub const BLOCK_ROWS: usize = 512;
 /// Blocks whose rows are mixed at once: a window of the epoch's order holds the
-/// rows of this many blocks, drawn at random from all the shards of the group,
-/// in a random order.
+/// rows of this many blocks, drawn at random from all the shards of the group.
 pub const WINDOW_BLOCKS: usize = 128;
+/// Consecutive rows of a block that one lane of a window reads in turn: about
+/// 3 KiB of a shard for short messages, so the rows share cache lines and pages.
+pub const RUN_ROWS: usize = 16;
+/// Lanes of a window: each reads one run at a time, and the window's order takes
+/// one row from each lane in turn, so any [`LANES`] consecutive rows come from
+/// that many places of the window.
+pub const LANES: usize = 64;
 
 /// Draws the rows of one group in a random order that stays local.
 ///
 /// The group's shards are cut into blocks of [`BLOCK_ROWS`] consecutive rows;
 /// the blocks are shuffled, and taken [`WINDOW_BLOCKS`] at a time into a
-/// window whose rows are drawn in a random permutation. A window touches a
-/// bounded part of the data (about 13 MB for short messages), which the caches
-/// and address translation keep close while its rows are drawn at random; a
-/// fully random order over gigabytes would miss them on every row. Because the
-/// blocks of a window come from random places of several shards (and `ingest`
-/// scatters the input over its shards), a window mixes the whole input even
-/// when it arrived sorted by time or label.
+/// window. A window's blocks are cut into runs of [`RUN_ROWS`] consecutive
+/// rows, the runs are shuffled, and [`LANES`] lanes read them: each lane takes
+/// the next run of the shuffled list when its own is done, and the order takes
+/// one row from each lane in turn. So a batch of 64 rows comes from 64 random
+/// places of the window, while the rows that follow in each lane sit next to
+/// the one just read: they share its cache lines and pages, and a lane's data
+/// stays in the caches while the window moves on. A window touches a bounded
+/// part of the data (about 13 MB for short messages); a fully random order over
+/// gigabytes would miss the caches and address translation on every row.
+/// Because the blocks of a window come from random places of several shards
+/// (and `ingest` scatters the input over its shards), a window mixes the whole
+/// input even when it arrived sorted by time or label.
 pub struct Interleave {
     /// Every block of the group: `(slot, first row, rows)`, in the drawn order.
     blocks: Vec<(u32, u64, u32)>,
@@ -92,6 +103,10 @@ pub struct Interleave {
     next_block: usize,
     /// The current window's rows (as row ids), in drawn order.
     window: Vec<usize>,
+    /// Scratch of [`Interleave::next_window`]: the window's rows in block
+    /// order, and its runs as ranges of them.
+    rows: Vec<usize>,
+    runs: Vec<(u32, u32)>,
     /// Position in `window`.
     pos: usize,
     /// Windows started so far.
@@ -123,6 +138,8 @@ impl Interleave {
             blocks,
             next_block: 0,
             window: Vec::new(),
+            rows: Vec::new(),
+            runs: Vec::new(),
             pos: 0,
             windows: 0,
             remaining: lens.iter().sum(),
@@ -143,21 +160,50 @@ impl Interleave {
         self.taken
     }
 
-    /// Fill the next window from the next blocks and permute it.
+    /// Fill the next window from the next blocks and draw its order.
     fn next_window(&mut self) {
         let end = (self.next_block + WINDOW_BLOCKS).min(self.blocks.len());
-        self.window.clear();
+        self.rows.clear();
+        self.runs.clear();
         for &(slot, start, n) in &self.blocks[self.next_block..end] {
             let base = (slot as usize) << ROW_BITS;
-            self.window
+            let first = self.rows.len();
+            self.rows
                 .extend((start as usize..start as usize + n as usize).map(|r| base | r));
+            // Runs never cross a block's end: a block's rows are consecutive.
+            for a in (first..self.rows.len()).step_by(RUN_ROWS) {
+                self.runs
+                    .push((a as u32, (a + RUN_ROWS).min(self.rows.len()) as u32));
+            }
         }
         self.next_block = end;
         let mut rng = ChaCha8Rng::seed_from_u64(seed_of(
             self.seed,
             &[0x9e2a, self.epoch as u64, self.group as u64, self.windows],
         ));
-        self.window.shuffle(&mut rng);
+        self.runs.shuffle(&mut rng);
+        // Lanes take runs in the shuffled order as theirs run out; the order
+        // takes a row from each lane with rows left, lane by lane.
+        let mut lanes = [(0u32, 0u32); LANES];
+        let mut next = 0;
+        self.window.clear();
+        loop {
+            let before = self.window.len();
+            for lane in lanes.iter_mut() {
+                if lane.0 == lane.1 {
+                    match self.runs.get(next) {
+                        Some(&run) => *lane = run,
+                        None => continue,
+                    }
+                    next += 1;
+                }
+                self.window.push(self.rows[lane.0 as usize]);
+                lane.0 += 1;
+            }
+            if self.window.len() == before {
+                break;
+            }
+        }
         self.windows += 1;
         self.pos = 0;
     }
@@ -259,6 +305,36 @@ mod tests {
             blocks.dedup();
             assert!(blocks.len() <= WINDOW_BLOCKS, "{} blocks", blocks.len());
         }
+    }
+
+    /// Lanes: while every lane has a run, any [`LANES`] rows drawn in a row
+    /// (one pass over the lanes) come from as many different runs, and a lane's
+    /// next row is the shard's next row except where it starts a new run.
+    #[test]
+    fn lanes_draw_from_many_places_and_read_on_in_each() {
+        let lens = [BLOCK_ROWS * WINDOW_BLOCKS + 300];
+        let mut a = Interleave::new(&lens, 5, 0, 0);
+        let mut w = Vec::new();
+        a.next_batch(BLOCK_ROWS * WINDOW_BLOCKS, &mut w);
+        let run_of = |id: usize| (id & ((1 << ROW_BITS) - 1)) / RUN_ROWS;
+        // All lanes hold a run until the shuffled list is used up, which is
+        // at the latest LANES runs before the window's end.
+        let full = w.len() - LANES * RUN_ROWS;
+        for pass in w[..full].chunks(LANES) {
+            let mut runs: Vec<usize> = pass.iter().map(|&id| run_of(id)).collect();
+            runs.sort();
+            runs.dedup();
+            assert_eq!(runs.len(), LANES);
+        }
+        let next_in_shard = (0..full - LANES)
+            .filter(|&p| w[p + LANES] == w[p] + 1)
+            .count();
+        let expected = (full - LANES) * (RUN_ROWS - 1) / RUN_ROWS;
+        assert!(
+            next_in_shard + LANES >= expected,
+            "{next_in_shard} of {} steps of a lane read on, expected about {expected}",
+            full - LANES
+        );
     }
 
     /// Input sorted by label still reaches the solver mixed: with two labels
