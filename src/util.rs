@@ -130,6 +130,106 @@ pub fn prefetch<T>(x: &T) {
     let _ = x;
 }
 
+/// Bytes of a huge page on x86_64 and arm64 Linux (the transparent kind).
+const HUGE_PAGE: usize = 2 << 20;
+
+/// A fixed-length array of numbers (`f64` unless said otherwise), zeroed at
+/// creation, for weight tables that are read at random places: it lives in an
+/// anonymous memory map advised to use transparent huge pages (`madvise`, on
+/// Linux), starting on a huge-page boundary, so that a table of several MiB
+/// needs a few entries of the processor's address translation cache instead of
+/// one per 4 KiB. Where the system gives no huge pages the advice is ignored
+/// and the pages are ordinary. Arrays under 2 MiB live on the heap.
+pub struct HugeVec<T: bytemuck::Pod = f64> {
+    store: HugeStore<T>,
+    len: usize,
+}
+
+enum HugeStore<T> {
+    Heap(Vec<T>),
+    /// The map and the byte offset of the array's start inside it.
+    Map(memmap2::MmapMut, usize),
+}
+
+impl<T: bytemuck::Pod> HugeVec<T> {
+    /// `len` zeros.
+    pub fn zeroed(len: usize) -> HugeVec<T> {
+        let bytes = len * std::mem::size_of::<T>();
+        let heap = || HugeVec {
+            store: HugeStore::Heap(vec![T::zeroed(); len]),
+            len,
+        };
+        if bytes < HUGE_PAGE {
+            return heap();
+        }
+        // One huge page more than needed, so the array can start on a
+        // boundary; pages never touched take no memory.
+        let Ok(map) = memmap2::MmapMut::map_anon(bytes + HUGE_PAGE) else {
+            // No map (an exotic system): the heap still works.
+            return heap();
+        };
+        #[cfg(target_os = "linux")]
+        let _ = map.advise(memmap2::Advice::HugePage);
+        let at = map.as_ptr() as usize;
+        let start = at.next_multiple_of(HUGE_PAGE) - at;
+        HugeVec {
+            store: HugeStore::Map(map, start),
+            len,
+        }
+    }
+}
+
+impl<T: bytemuck::Pod> std::ops::Deref for HugeVec<T> {
+    type Target = [T];
+    fn deref(&self) -> &[T] {
+        match &self.store {
+            HugeStore::Heap(v) => v,
+            // The map is page-aligned and `start` a multiple of a huge page,
+            // so the cast is aligned; the length was mapped.
+            HugeStore::Map(m, start) => {
+                bytemuck::cast_slice(&m[*start..*start + self.len * std::mem::size_of::<T>()])
+            }
+        }
+    }
+}
+
+impl<T: bytemuck::Pod> std::ops::DerefMut for HugeVec<T> {
+    fn deref_mut(&mut self) -> &mut [T] {
+        match &mut self.store {
+            HugeStore::Heap(v) => v,
+            HugeStore::Map(m, start) => bytemuck::cast_slice_mut(
+                &mut m[*start..*start + self.len * std::mem::size_of::<T>()],
+            ),
+        }
+    }
+}
+
+impl<T: bytemuck::Pod> From<&[T]> for HugeVec<T> {
+    fn from(x: &[T]) -> HugeVec<T> {
+        let mut h = HugeVec::zeroed(x.len());
+        h.copy_from_slice(x);
+        h
+    }
+}
+
+impl<T: bytemuck::Pod> Clone for HugeVec<T> {
+    fn clone(&self) -> HugeVec<T> {
+        HugeVec::from(&self[..])
+    }
+}
+
+impl<T: bytemuck::Pod + PartialEq> PartialEq for HugeVec<T> {
+    fn eq(&self, other: &HugeVec<T>) -> bool {
+        self[..] == other[..]
+    }
+}
+
+impl<T: bytemuck::Pod> std::fmt::Debug for HugeVec<T> {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("HugeVec").field("len", &self.len).finish()
+    }
+}
+
 /// Append `x` with six decimals, exactly as `format!("{x:.6}")` writes it (the
 /// exact binary value rounded half to even, the sign kept for negative values
 /// that round to zero), without the formatting machinery: for scoring's output,
@@ -204,6 +304,32 @@ fn fixed6_units(x: f64) -> Option<u128> {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// Small and large arrays start as zeros, keep what is written, clone and
+    /// compare by content; a large one starts on a huge-page boundary.
+    #[test]
+    fn huge_vecs_hold_their_numbers() {
+        for len in [0usize, 3, 1 << 10, (3 << 20) / 8 + 5] {
+            let mut h: HugeVec = HugeVec::zeroed(len);
+            assert_eq!(h.len(), len);
+            assert!(h.iter().all(|&x| x == 0.0));
+            for (i, x) in h.iter_mut().enumerate() {
+                *x = i as f64 * 0.5;
+            }
+            let c = h.clone();
+            assert!(c == h);
+            assert_eq!(c.last().copied(), len.checked_sub(1).map(|i| i as f64 * 0.5));
+            let from = HugeVec::from(&c[..]);
+            assert!(from == h);
+            if len * 8 >= HUGE_PAGE {
+                assert_eq!(h.as_ptr() as usize % HUGE_PAGE, 0);
+            }
+        }
+        let mut f: HugeVec<f32> = HugeVec::zeroed(HUGE_PAGE);
+        f[HUGE_PAGE - 1] = 2.5;
+        assert_eq!(f.iter().sum::<f32>(), 2.5);
+        assert_eq!(format!("{f:?}"), format!("HugeVec {{ len: {HUGE_PAGE} }}"));
+    }
 
     #[test]
     fn formats() {

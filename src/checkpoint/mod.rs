@@ -302,8 +302,8 @@ impl Checkpoint {
                 let s = &sc[k * SCALARS..(k + 1) * SCALARS];
                 let scalars = [0, 1, 2, 3, 4].map(|i| f64::from_bits(s[i]));
                 Linear::from_state(
-                    v[k * d..(k + 1) * d].to_vec(),
-                    u[k * d..(k + 1) * d].to_vec(),
+                    &v[k * d..(k + 1) * d],
+                    &u[k * d..(k + 1) * d],
                     scalars,
                     s[5],
                 )
@@ -339,7 +339,7 @@ mod tests {
             .map(|k| {
                 let v: Vec<f64> = (0..d).map(|i| (i * (k + 1)) as f64 * 0.1 - 3.0).collect();
                 let u: Vec<f64> = (0..d).map(|i| 1.0 / (1.0 + i as f64)).collect();
-                Linear::from_state(v, u, [0.5, -0.25, 12.0, 3.0, 0.125], 17 + k as u64)
+                Linear::from_state(&v, &u, [0.5, -0.25, 12.0, 3.0, 0.125], 17 + k as u64)
             })
             .collect();
         Checkpoint {

@@ -44,7 +44,7 @@ use serde::{Deserialize, Serialize};
 
 use crate::error::{Error, Result};
 use crate::shard::{Row, Shard};
-use crate::util::prefetch;
+use crate::util::{prefetch, HugeVec};
 
 /// Loss functions of the margin `m = y(w·x + b)`.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize, clap::ValueEnum)]
@@ -245,12 +245,12 @@ impl SolverConfig {
 /// One linear model `w·x + b` with `w = s·v` and its lazily kept average.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Linear {
-    v: Vec<f64>,
+    v: HugeVec,
     s: f64,
     b: f64,
     /// ‖v‖², kept for the projection.
     vnorm2: f64,
-    u: Vec<f64>,
+    u: HugeVec,
     big_b: f64,
     bias_sum: f64,
     averaged: u64,
@@ -262,11 +262,11 @@ impl Linear {
     /// A zero model over `dim` features.
     pub fn new(dim: usize) -> Self {
         Linear {
-            v: vec![0.0; dim],
+            v: HugeVec::zeroed(dim),
             s: 1.0,
             b: 0.0,
             vnorm2: 0.0,
-            u: vec![0.0; dim],
+            u: HugeVec::zeroed(dim),
             big_b: 0.0,
             bias_sum: 0.0,
             averaged: 0,
@@ -300,15 +300,15 @@ impl Linear {
         )
     }
 
-    /// Rebuild a model from [`Linear::state`].
-    pub fn from_state(v: Vec<f64>, u: Vec<f64>, scalars: [f64; 5], averaged: u64) -> Self {
+    /// Rebuild a model from [`Linear::state`] (`v` and `u` are copied).
+    pub fn from_state(v: &[f64], u: &[f64], scalars: [f64; 5], averaged: u64) -> Self {
         let [s, b, vnorm2, big_b, bias_sum] = scalars;
         Linear {
-            v,
+            v: HugeVec::from(v),
             s,
             b,
             vnorm2,
-            u,
+            u: HugeVec::from(u),
             big_b,
             bias_sum,
             averaged,
@@ -483,7 +483,7 @@ impl Linear {
             self.s = 1.0;
             return;
         }
-        for x in &mut self.v {
+        for x in self.v.iter_mut() {
             *x *= s;
         }
         self.vnorm2 = self.v.iter().map(|x| x * x).sum();
@@ -508,7 +508,7 @@ impl Linear {
         (
             self.u
                 .iter()
-                .zip(&self.v)
+                .zip(self.v.iter())
                 .map(|(&u, &v)| ((u + self.big_b * v) / k) as f32)
                 .collect(),
             (self.bias_sum / k) as f32,
@@ -1151,10 +1151,10 @@ mod tests {
     #[test]
     fn renormalisation_keeps_values() {
         let mut m = Linear::new(4);
-        m.v = vec![1.0, -2.0, 0.0, 4.0];
+        m.v = HugeVec::from(&[1.0, -2.0, 0.0, 4.0][..]);
         m.vnorm2 = 21.0;
         m.s = 1e-12;
-        m.u = vec![0.5, 0.5, 0.5, 0.5];
+        m.u = HugeVec::from(&[0.5, 0.5, 0.5, 0.5][..]);
         m.big_b = 3e-12;
         m.averaged = 2;
         let before = (m.current(), m.averaged());
