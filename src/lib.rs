@@ -52,6 +52,7 @@ pub mod calibrate;
 pub mod checkpoint;
 pub mod container;
 pub mod dataset;
+pub mod distributed;
 pub mod error;
 pub mod eval;
 pub mod explain;

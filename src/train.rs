@@ -23,16 +23,16 @@ use std::time::{Duration, Instant};
 use rayon::prelude::*;
 
 use crate::checkpoint::{
-    Checkpoint, CheckpointMeta, EarlyStop, EpochSums, Position, ShardRef, WriteCost,
+    Checkpoint, CheckpointMeta, EarlyStop, EpochSums, Position, RankPosition, ShardRef, WriteCost,
 };
 use crate::container;
 use crate::dataset::sketch::TokenSketch;
 use crate::dataset::{self, docfreq::DocFreq, Log, Manifest, ShardEntry, Split};
+use crate::distributed::{self, Collective, Control, Solo};
 use crate::error::{Error, Result};
-use crate::eval::{evaluate, per_class, Evaluation, Weights};
+use crate::eval::{evaluate_sums, per_class, Evaluation, Weights};
 use crate::model::{EpochLog, Model, ModelMeta, TrainSettings, WarmStart};
 use crate::shard::Shard;
-use crate::solver::mix::mix;
 use crate::solver::order::{self, Group, Interleave};
 use crate::solver::{prefetch_row, Linear, Loss, Rows, SolverConfig, Target, Trainer};
 use crate::util;
@@ -243,9 +243,13 @@ pub fn default_sync_every(dim: u64, nnz_per_row: f64, replicas: usize, batch: us
     (per_replica * replicas as u64).div_ceil(round).max(1) * round
 }
 
-/// Rounds of steps (one batch per replica) between two mixes.
+/// Rounds of steps (one batch per replica, on every rank) between two mixes;
+/// `u64::MAX` when `sync_every` is 0 (mixes at epoch ends only).
 pub(crate) fn sync_rounds_of(s: &TrainSettings) -> u64 {
-    let round = s.solver.batch as u64 * u64::from(s.replicas.max(1));
+    if s.sync_every == 0 {
+        return u64::MAX;
+    }
+    let round = s.solver.batch as u64 * u64::from(s.replicas.max(1)) * u64::from(s.ranks.max(1));
     s.sync_every.div_ceil(round.max(1)).max(1)
 }
 
@@ -418,11 +422,25 @@ pub(crate) fn open_shards(
     entries: &[&ShardEntry],
     n_labels: u32,
 ) -> Result<Vec<Shard>> {
+    open_shards_checking(dir, m, entries, n_labels, |_| true)
+}
+
+/// [`open_shards`], checking every section of only the shards `i` for which
+/// `check(i)` holds (the ranks of a distributed run share that work); every
+/// shard's header and size are checked on opening.
+fn open_shards_checking(
+    dir: &Path,
+    m: &Manifest,
+    entries: &[&ShardEntry],
+    n_labels: u32,
+    check: impl Fn(usize) -> bool + Sync,
+) -> Result<Vec<Shard>> {
     // Checked on the pool's threads (the checksums are most of the start-up
     // time); the first failure in list order is the one reported.
     let opened: Vec<Result<Shard>> = entries
         .par_iter()
-        .map(|e| {
+        .enumerate()
+        .map(|(i, e)| {
             let s = dataset::open_shard(dir, e)?;
             if s.cols() != m.features.buckets() {
                 return Err(Error::Mismatch {
@@ -430,7 +448,9 @@ pub(crate) fn open_shards(
                     what: "shard width differs from the dataset's buckets".into(),
                 });
             }
-            s.verify(Some(n_labels))?;
+            if check(i) {
+                s.verify(Some(n_labels))?;
+            }
             Ok(s)
         })
         .collect();
@@ -439,7 +459,15 @@ pub(crate) fn open_shards(
 
 /// Train a model on the dataset in `opts.dir` and write it to `opts.model`.
 pub fn train(opts: &TrainOptions, log: Log) -> Result<Outcome> {
-    begin(opts, None, log)
+    begin(opts, None, log, &Solo)
+}
+
+/// [`train`] as one process of a distributed run: every process of `comm`
+/// calls it with the same options (see [`crate::distributed`]). Only rank 0
+/// writes the model and checkpoints; give the others a `log` that prints
+/// nothing. With one process it is [`train`], bit for bit.
+pub fn train_in(opts: &TrainOptions, log: Log, comm: &dyn Collective) -> Result<Outcome> {
+    begin(opts, None, log, comm)
 }
 
 /// Continue the run saved in `resume.checkpoint`. The solver settings, epochs,
@@ -449,7 +477,21 @@ pub fn train(opts: &TrainOptions, log: Log) -> Result<Outcome> {
 /// when `allow_appended`. The final model is byte-identical to the model of an
 /// uninterrupted run.
 pub fn resume(opts: &TrainOptions, resume: Resume, log: Log) -> Result<Outcome> {
-    begin(opts, Some(resume), log)
+    begin(opts, Some(resume), log, &Solo)
+}
+
+/// [`resume`] as one process of a distributed run (every process passes the
+/// same checkpoint, which rank 0 read: see [`Checkpoint::from_bytes`]). With as
+/// many processes as the checkpoint's run had, the final model is the same as
+/// an uninterrupted run's; with another number, the epoch in progress starts
+/// over on the new shares (the model and step counter continue).
+pub fn resume_in(
+    opts: &TrainOptions,
+    resume: Resume,
+    log: Log,
+    comm: &dyn Collective,
+) -> Result<Outcome> {
+    begin(opts, Some(resume), log, comm)
 }
 
 /// Take a lock next to `dest`, explaining an unwritable folder.
@@ -465,7 +507,12 @@ pub(crate) fn lock_next_to(dest: &Path, what: &str) -> Result<util::Lock> {
     })
 }
 
-fn begin(opts: &TrainOptions, resume: Option<Resume>, log: Log) -> Result<Outcome> {
+fn begin(
+    opts: &TrainOptions,
+    resume: Option<Resume>,
+    log: Log,
+    comm: &dyn Collective,
+) -> Result<Outcome> {
     let start = Instant::now();
     let settings_epochs = resume
         .as_ref()
@@ -500,13 +547,26 @@ fn begin(opts: &TrainOptions, resume: Option<Resume>, log: Log) -> Result<Outcom
             opts.model.display()
         )));
     }
-    let _model_lock = lock_next_to(&opts.model, "model")?;
-    let _ckpt_lock = lock_next_to(&ckpt_path, "checkpoint")?;
-    container::remove_stale_temps(&opts.model);
-    container::remove_stale_temps(&ckpt_path);
+    // Only rank 0 writes files.
+    let locks = distributed::agree(
+        comm,
+        if comm.rank() == 0 {
+            lock_next_to(&opts.model, "model").and_then(|a| {
+                let b = lock_next_to(&ckpt_path, "checkpoint")?;
+                container::remove_stale_temps(&opts.model);
+                container::remove_stale_temps(&ckpt_path);
+                Ok(Some((a, b)))
+            })
+        } else {
+            Ok(None)
+        },
+    )?;
+    let _locks = locks;
 
-    let m = Manifest::load(&opts.dir)?;
+    let m = distributed::agree(comm, Manifest::load(&opts.dir))?;
+    distributed::check_same_dataset(comm, m.fingerprint())?;
     let positive = trainable_task(&m, &opts.dir)?;
+    let ranks = comm.size() as u64;
     let settings = match &resume {
         Some(r) => {
             check_dataset(
@@ -517,14 +577,17 @@ fn begin(opts: &TrainOptions, resume: Option<Resume>, log: Log) -> Result<Outcom
                 positive,
                 r.allow_appended,
             )?;
-            r.checkpoint.meta.settings.clone()
+            let mut s = r.checkpoint.meta.settings.clone();
+            s.ranks = ranks as u32;
+            s
         }
         None => {
             let (class_weights, class_weight_rule) =
                 class_weights_of(&m, positive, &opts.class_weight)?;
+            // Each rank's replicas, by its share of the rows.
             let replicas = opts
                 .replicas
-                .unwrap_or_else(|| auto_replicas(positive.is_some(), m.train_rows()));
+                .unwrap_or_else(|| auto_replicas(positive.is_some(), m.train_rows() / ranks));
             TrainSettings {
                 solver: opts.solver.clone(),
                 epochs: opts.epochs,
@@ -536,8 +599,10 @@ fn begin(opts: &TrainOptions, resume: Option<Resume>, log: Log) -> Result<Outcom
                 init_from: None,
                 replicas: replicas as u32,
                 sync_every: match opts.sync_every {
-                    _ if replicas <= 1 => 0,
+                    _ if replicas <= 1 && ranks == 1 => 0,
                     Some(rows) => rows,
+                    // Ranks mix at epoch ends unless told otherwise.
+                    None if ranks > 1 => 0,
                     None => default_sync_every(
                         m.features.buckets(),
                         m.nnz() as f64 / (m.train_rows() + m.validation_rows()).max(1) as f64,
@@ -545,6 +610,7 @@ fn begin(opts: &TrainOptions, resume: Option<Resume>, log: Log) -> Result<Outcom
                         opts.solver.batch,
                     ),
                 },
+                ranks: ranks as u32,
             }
         }
     };
@@ -561,6 +627,7 @@ fn begin(opts: &TrainOptions, resume: Option<Resume>, log: Log) -> Result<Outcom
         ckpt_path,
         log,
         start,
+        comm,
     };
     pool.install(|| run.run(resume))
 }
@@ -716,6 +783,8 @@ struct Run<'a> {
     ckpt_path: PathBuf,
     log: Log,
     start: Instant,
+    /// The processes of the run ([`Solo`] on one machine).
+    comm: &'a dyn Collective,
 }
 
 /// What a checkpoint needs from the loop.
@@ -727,12 +796,16 @@ struct Snapshot<'a> {
     early: EarlyStop,
     epochs: &'a [EpochLog],
     shards: Vec<ShardRef>,
+    /// Every rank's position (distributed runs only).
+    ranks: Vec<RankPosition>,
 }
 
 impl Run<'_> {
     fn run(mut self, resume: Option<Resume>) -> Result<Outcome> {
         let opts = self.opts;
         let m = self.m;
+        let comm = self.comm;
+        let (rank, ranks) = (comm.rank(), comm.size());
         let positive = self.positive;
         let n_labels = m.labels.len() as u32;
         let dim = m.features.buckets() as usize;
@@ -742,15 +815,28 @@ impl Run<'_> {
         };
         let idf = match &mut resume_ck {
             Some(ck) => ck.idf.take(),
-            None if self.settings.idf => Some(idf_of(&opts.dir, m)?),
+            None if self.settings.idf => Some(distributed::agree(comm, idf_of(&opts.dir, m))?),
             None => None,
         };
         // The token sketch goes into the model; read (and checked) before training.
-        let sketch = dataset::sketch::load(&opts.dir, m)?;
+        let sketch = distributed::agree(comm, dataset::sketch::load(&opts.dir, m))?;
         let train_entries: Vec<&ShardEntry> = m.shards_of(Split::Train).collect();
-        let train = open_shards(&opts.dir, m, &train_entries, n_labels)?;
         let valid_entries: Vec<&ShardEntry> = m.shards_of(Split::Validation).collect();
-        let valid = open_shards(&opts.dir, m, &valid_entries, n_labels)?;
+        // Every rank maps every training shard (its share changes each epoch)
+        // but checks the sections of a share of them only; it evaluates its
+        // share of the validation shards.
+        let mine = |i: usize| i % ranks == rank;
+        let train = distributed::agree(
+            comm,
+            open_shards_checking(&opts.dir, m, &train_entries, n_labels, mine),
+        )?;
+        let my_valid: Vec<&ShardEntry> = valid_entries
+            .iter()
+            .enumerate()
+            .filter(|&(i, _)| mine(i))
+            .map(|(_, e)| *e)
+            .collect();
+        let valid = distributed::agree(comm, open_shards(&opts.dir, m, &my_valid, n_labels))?;
         let all: Vec<usize> = (0..train.len()).collect();
         let targets: Vec<Target> = match positive {
             Some(p) => vec![Target::Class(p)],
@@ -772,6 +858,9 @@ impl Run<'_> {
         let per_model = trainer.models.len();
         // Models saved by a checkpoint: those of every replica, one after the other.
         let mut saved_models = None;
+        // Whether the run resumes an epoch part-way (on any rank): that epoch
+        // keeps the shards it started with.
+        let mut resumed_part_way = false;
         // Where to begin, and the list of training shards of the first epoch.
         let (mut first, mut first_sums, mut early, mut epochs, first_list) = match resume_ck {
             Some(ck) => {
@@ -784,11 +873,50 @@ impl Run<'_> {
                     .filter(|r| r.split == Split::Train)
                     .filter_map(|r| train_entries.iter().position(|e| e.file == r.file))
                     .collect();
+                let mut position = meta.position;
+                let mut sums = meta.epoch_sums;
+                let was = meta.settings.ranks.max(1) as usize;
+                let part_way = (position.group, position.taken) != (0, 0)
+                    || meta
+                        .rank_positions
+                        .iter()
+                        .any(|p| (p.group, p.taken) != (0, 0));
+                resumed_part_way = part_way;
+                let mut restart = String::new();
+                if was == ranks && ranks > 1 {
+                    // Each rank continues its own share; the epoch's sums so
+                    // far (of all ranks) count once, on rank 0.
+                    match meta.rank_positions.get(rank) {
+                        Some(p) if meta.rank_positions.len() == ranks => {
+                            position.group = p.group;
+                            position.taken = p.taken;
+                        }
+                        _ => {
+                            return Err(Error::Invalid(format!(
+                                "the checkpoint of a run on {was} ranks holds {} rank position(s)",
+                                meta.rank_positions.len()
+                            )))
+                        }
+                    }
+                    if rank != 0 {
+                        sums = EpochSums::default();
+                    }
+                } else if was != ranks && part_way {
+                    // Shares of another number of ranks: the epoch starts over.
+                    position.group = 0;
+                    position.taken = 0;
+                    sums = EpochSums::default();
+                    resumed_part_way = false;
+                    restart = format!(
+                        "; the checkpoint was taken by {was} rank(s) part-way through the epoch, \
+                         which starts over on {ranks}"
+                    );
+                }
                 (self.log)(&format!(
-                    "resuming at epoch {} of {}, step {}{}",
-                    meta.position.epoch.min(s.epochs - 1) + 1,
+                    "resuming at epoch {} of {}, step {}{}{restart}",
+                    position.epoch.min(s.epochs - 1) + 1,
                     s.epochs,
-                    meta.position.step,
+                    position.step,
                     if allow_appended && list.len() < train.len() {
                         format!(
                             "; {} added shard(s) join from the next epoch",
@@ -798,18 +926,14 @@ impl Run<'_> {
                         String::new()
                     }
                 ));
-                (
-                    Some(meta.position),
-                    meta.epoch_sums,
-                    meta.early_stop,
-                    meta.epochs,
-                    list,
-                )
+                (Some(position), sums, meta.early_stop, meta.epochs, list)
             }
             None => {
                 if let Some(path) = &opts.init_from {
-                    let (models, t, warm) =
-                        warm_start(path, m, positive, &model_labels, opts.idf, &self.log)?;
+                    let (models, t, warm) = distributed::agree(
+                        comm,
+                        warm_start(path, m, positive, &model_labels, opts.idf, &self.log),
+                    )?;
                     trainer.set_models(models)?;
                     trainer.t = t;
                     self.settings.init_from = Some(warm);
@@ -824,7 +948,8 @@ impl Run<'_> {
             }
         };
         trainer.set_solo(n_rep > 1);
-        trainer.set_stride(n_rep);
+        // Each round takes one batch per replica on every rank.
+        trainer.set_stride(n_rep * ranks);
         let mut replicas: Vec<Trainer> = match saved_models {
             Some(models) => {
                 if models.len() != n_rep * per_model {
@@ -858,6 +983,8 @@ impl Run<'_> {
         let mut done_early = s.patience.is_some_and(|p| early.since_best >= p);
         let valid_set = Validation {
             shards: &valid,
+            all_shards: valid_entries.len(),
+            comm,
             positive,
             classes: n_labels as usize,
             idf: idf.as_deref(),
@@ -870,51 +997,108 @@ impl Run<'_> {
             let from = resumed.map_or((0, 0), |p| (p.group as usize, p.taken));
             // An epoch resumed part-way keeps the shards it started with; shards
             // appended since join when an epoch starts.
-            let list = if epoch == start_epoch && from != (0, 0) {
+            let epoch_shards = if epoch == start_epoch && resumed.is_some() && resumed_part_way {
                 &first_list
             } else {
                 &all
+            };
+            // This rank's share of them.
+            let list: Vec<usize> = {
+                let shard_lens: Vec<usize> = epoch_shards.iter().map(|&i| lens[i]).collect();
+                distributed::share(&shard_lens, s.seed, epoch, rank, ranks)
+                    .into_iter()
+                    .map(|k| epoch_shards[k])
+                    .collect()
             };
             let mut sums = std::mem::take(&mut first_sums);
             let (rows_before, nnz_before) = (sums.rows, sums.nnz);
             let t0 = Instant::now();
             let average = epoch >= s.solver.average_from;
-            let bar = progress(opts.progress, m.train_rows(), epoch + 1, s.epochs);
+            let bar = progress(
+                opts.progress,
+                m.train_rows().div_ceil(ranks as u64),
+                epoch + 1,
+                s.epochs,
+            );
             if let Some(b) = &bar {
                 b.set_position(sums.rows);
             }
             let shard_refs = |list: &[usize]| self.shard_refs(&train_entries, &valid_entries, list);
             let mut stopped = None;
-            let epoch_rows = list.iter().map(|&i| lens[i]).sum();
-            let per_stretch = stretch_batches(s.solver.batch, n_rep, sync_rounds, epoch_rows);
+            // The same stretches on every rank: cut by the epoch's rows per rank.
+            let epoch_rows: usize = epoch_shards.iter().map(|&i| lens[i]).sum();
+            let per_stretch = stretch_batches(
+                s.solver.batch,
+                n_rep,
+                sync_rounds,
+                epoch_rows.div_ceil(ranks),
+            );
             let sweep = Sweep {
                 shards: &train,
                 lens: &lens,
-                list,
+                list: &list,
                 seed: s.seed,
                 epoch,
                 batch: s.solver.batch,
             };
-            sweep.run(from, per_stretch, |views, stretch| {
+            let groups = order::groups(list.len(), s.seed, epoch).len();
+            // Where this rank stands in its share (after the last stretch).
+            let mut here = if from.0 >= groups {
+                (groups as u32, 0)
+            } else {
+                (from.0 as u32, from.1)
+            };
+            // One stretch of this rank (`None` once its share is used up): the
+            // ranks agree on the rounds it takes (a rank with fewer batches
+            // holds for the rest), then mix and save as due. Returns whether
+            // the epoch goes on.
+            let mut stretch_step = |work: Option<(&[Group<'_, Shard>], &Stretch)>| -> Result<bool> {
+                let (mine_rounds, rows) = match work {
+                    Some((_, st)) => (st.len().div_ceil(n_rep) as u64, st.rows()),
+                    None => {
+                        here = (groups as u32, 0);
+                        (0, 0)
+                    }
+                };
+                let ctl = distributed::exchange(
+                    comm,
+                    Control {
+                        rounds: mine_rounds,
+                        stop: stop_requested(),
+                        checkpoint_due: rank == 0 && periodic && last_ck.elapsed() >= every,
+                    },
+                );
+                if ctl.rounds == 0 {
+                    return Ok(false);
+                }
+                let rounds = ctl.rounds as usize;
                 if n_rep == 1 {
                     let tr = &mut replicas[0];
-                    each_batch(views, stretch, 0, 1, |view, batch| {
-                        sums.add(&tr.step(view, batch, average));
-                    });
+                    let mut took = 0;
+                    if let Some((views, st)) = work {
+                        each_batch(views, st, 0, 1, |view, batch| {
+                            sums.add(&tr.step(view, batch, average));
+                            took += 1;
+                        });
+                    }
+                    for _ in took..rounds {
+                        tr.hold(average);
+                    }
                 } else {
                     // Replica r takes batches r, r + R, …; one left without a
-                    // batch in the last round holds, so the step counts agree.
-                    let rounds = stretch.len().div_ceil(n_rep);
+                    // batch in the last rounds holds, so the step counts agree.
                     let parts: Vec<EpochSums> = replicas
                         .par_iter_mut()
                         .enumerate()
                         .map(|(r, tr)| {
                             let mut own = EpochSums::default();
                             let mut took = 0;
-                            each_batch(views, stretch, r, n_rep, |view, batch| {
-                                own.add(&tr.step(view, batch, average));
-                                took += 1;
-                            });
+                            if let Some((views, st)) = work {
+                                each_batch(views, st, r, n_rep, |view, batch| {
+                                    own.add(&tr.step(view, batch, average));
+                                    took += 1;
+                                });
+                            }
                             for _ in took..rounds {
                                 tr.hold(average);
                             }
@@ -926,30 +1110,49 @@ impl Run<'_> {
                         sums.rows += p.rows;
                         sums.nnz += p.nnz;
                     }
+                }
+                if n_rep > 1 || ranks > 1 {
                     since_mix += rounds as u64;
                     if since_mix >= sync_rounds {
-                        mix(&mut replicas);
+                        distributed::mix_across(&mut replicas, comm);
                         since_mix = 0;
                     }
                 }
-                if let Some(b) = &bar {
-                    b.inc(stretch.rows());
+                if let Some((_, st)) = work {
+                    here = (st.end.0 as u32, st.end.1);
                 }
-                let stop = stop_requested();
-                if stop || (periodic && last_ck.elapsed() >= every) {
+                if let Some(b) = &bar {
+                    b.inc(rows);
+                }
+                // One process saves where it likes; ranks save only right
+                // after a mix, when every rank holds the same models, or mix
+                // early to stop (the stop is agreed through `ctl`).
+                let stop = ctl.stop || (ranks == 1 && stop_requested());
+                let due = if ranks == 1 {
+                    periodic && last_ck.elapsed() >= every
+                } else {
+                    ctl.checkpoint_due && since_mix == 0
+                };
+                if stop || due {
+                    if stop && since_mix > 0 && ranks > 1 {
+                        distributed::mix_across(&mut replicas, comm);
+                        since_mix = 0;
+                    }
+                    let positions = rank_positions(comm, here);
                     let snap = Snapshot {
                         replicas: &replicas,
                         position: Position {
                             epoch,
-                            group: stretch.end.0 as u32,
-                            taken: stretch.end.1,
+                            group: here.0,
+                            taken: here.1,
                             step: replicas[0].t,
                             since_mix,
                         },
-                        sums,
+                        sums: global_sums(comm, sums),
                         early,
                         epochs: &epochs,
-                        shards: shard_refs(list),
+                        shards: shard_refs(epoch_shards),
+                        ranks: positions,
                     };
                     last_cost = Some(self.write_checkpoint(&snap)?);
                     last_ck = Instant::now();
@@ -959,10 +1162,19 @@ impl Run<'_> {
                     }
                 }
                 Ok(true)
+            };
+            let mut go_on = true;
+            sweep.run(from, per_stretch, |views, stretch| {
+                go_on = stretch_step(Some((views, stretch)))?;
+                Ok(go_on)
             })?;
+            // This rank's share is used up: hold while the others finish.
+            if go_on {
+                while stretch_step(None)? {}
+            }
             // The epoch ends on one model: the replicas' mean.
             if stopped.is_none() && since_mix > 0 {
-                mix(&mut replicas);
+                distributed::mix_across(&mut replicas, comm);
                 since_mix = 0;
             }
             if let Some(b) = bar {
@@ -974,6 +1186,7 @@ impl Run<'_> {
                     position,
                 });
             }
+            let sums = global_sums(comm, sums);
             let rate = Rate {
                 rows: sums.rows - rows_before,
                 nnz: sums.nnz - nnz_before,
@@ -1004,7 +1217,15 @@ impl Run<'_> {
                     }
                 }
             }
-            let stop = stop_requested();
+            let stop = distributed::exchange(
+                comm,
+                Control {
+                    rounds: 0,
+                    stop: stop_requested(),
+                    checkpoint_due: false,
+                },
+            )
+            .stop;
             if periodic || stop {
                 let snap = Snapshot {
                     replicas: &replicas,
@@ -1019,6 +1240,7 @@ impl Run<'_> {
                     early,
                     epochs: &epochs,
                     shards: shard_refs(&all),
+                    ranks: rank_positions(comm, (0, 0)),
                 };
                 last_cost = Some(self.write_checkpoint(&snap)?);
                 last_ck = Instant::now();
@@ -1040,14 +1262,19 @@ impl Run<'_> {
             idf,
             sketch,
         );
-        model.save(&opts.model).map_err(|e| match e {
-            Error::Io { path, cause } => Error::Invalid(format!(
-                "could not write the model {} ({}: {cause}); the previous model, if any, is intact",
-                opts.model.display(),
-                path.display()
-            )),
-            other => other,
-        })?;
+        let saved = if rank == 0 {
+            model.save(&opts.model).map_err(|e| match e {
+                Error::Io { path, cause } => Error::Invalid(format!(
+                    "could not write the model {} ({}: {cause}); the previous model, if any, is intact",
+                    opts.model.display(),
+                    path.display()
+                )),
+                other => other,
+            })
+        } else {
+            Ok(())
+        };
+        distributed::agree(comm, saved)?;
         Ok(Outcome::Finished(Box::new(TrainReport {
             model,
             seconds: self.start.elapsed().as_secs_f64(),
@@ -1093,9 +1320,20 @@ impl Run<'_> {
             epoch_sums: snap.sums,
             early_stop: snap.early,
             epochs: snap.epochs.to_vec(),
+            rank_positions: snap.ranks.clone(),
         };
+        // Rank 0 writes for all: at a checkpoint every rank holds the same models.
+        if self.comm.rank() != 0 {
+            return distributed::agree(
+                self.comm,
+                Ok(WriteCost {
+                    bytes: 0,
+                    seconds: 0.0,
+                }),
+            );
+        }
         let models: Vec<&Linear> = snap.replicas.iter().flat_map(|t| &t.models).collect();
-        Checkpoint::write(&self.ckpt_path, &meta, &models, snap.replicas[0].idf())
+        let written = Checkpoint::write(&self.ckpt_path, &meta, &models, snap.replicas[0].idf())
         .map_err(|e| match e {
             Error::Io { path, cause } => Error::Invalid(format!(
                 "could not write the checkpoint {} ({}: {cause}); the previous checkpoint, if any, is intact",
@@ -1103,7 +1341,37 @@ impl Run<'_> {
                 path.display()
             )),
             other => other,
+        });
+        distributed::agree(self.comm, written)
+    }
+}
+
+/// Every rank's position in its share of the epoch, in rank order (empty for
+/// one process, whose position is the checkpoint's own).
+fn rank_positions(comm: &dyn Collective, here: (u32, u64)) -> Vec<RankPosition> {
+    if comm.size() == 1 {
+        return Vec::new();
+    }
+    comm.gather_u64(&[u64::from(here.0), here.1])
+        .chunks_exact(2)
+        .map(|c| RankPosition {
+            group: c[0] as u32,
+            taken: c[1],
         })
+        .collect()
+}
+
+/// The epoch's sums over all ranks (counts below 2^53 travel exactly as f64).
+fn global_sums(comm: &dyn Collective, s: EpochSums) -> EpochSums {
+    if comm.size() == 1 {
+        return s;
+    }
+    let mut buf = [s.loss, s.rows as f64, s.nnz as f64];
+    comm.sum_f64(&mut buf);
+    EpochSums {
+        loss: buf[0],
+        rows: buf[1] as u64,
+        nnz: buf[2] as u64,
     }
 }
 
@@ -1361,8 +1629,12 @@ pub(crate) fn stretch_batches(
 
 /// The validation split and what scoring it needs.
 pub(crate) struct Validation<'a> {
-    /// Validation shards (may be empty).
+    /// This process's share of the validation shards (may be empty).
     pub shards: &'a [Shard],
+    /// Validation shards of all processes (none: no validation).
+    pub all_shards: usize,
+    /// The processes whose shares add up to the split.
+    pub comm: &'a dyn Collective,
     /// Positive class id of a binary task.
     pub positive: Option<u32>,
     /// Classes of the dataset.
@@ -1418,8 +1690,8 @@ pub(crate) fn end_epoch(
             epoch + 1
         )));
     }
-    let eval = (!valid.shards.is_empty()).then(|| {
-        evaluate(
+    let eval = (valid.all_shards > 0).then(|| {
+        let mut sums = evaluate_sums(
             valid.shards,
             Weights {
                 weights: w,
@@ -1430,7 +1702,19 @@ pub(crate) fn end_epoch(
             valid.positive,
             valid.classes,
             it.loss,
-        )
+        );
+        if valid.comm.size() > 1 {
+            // Counts below 2^53 travel exactly as f64.
+            let mut buf = vec![sums.loss, sums.hinge];
+            buf.extend(sums.confusion.iter().flatten().map(|&c| c as f64));
+            valid.comm.sum_f64(&mut buf);
+            sums.loss = buf[0];
+            sums.hinge = buf[1];
+            for (c, &x) in sums.confusion.iter_mut().flatten().zip(&buf[2..]) {
+                *c = x as u64;
+            }
+        }
+        sums.finish()
     });
     let macro_f1 = eval.as_ref().filter(|_| valid.positive.is_none()).map(|e| {
         let pc = per_class(&e.confusion);

@@ -250,6 +250,8 @@ fn run(
     let mut last_eval: Vec<Option<Evaluation>> = vec![None; k];
     let valid_set = Validation {
         shards: &valid,
+        all_shards: valid.len(),
+        comm: &crate::distributed::Solo,
         positive,
         classes: n_labels as usize,
         idf: idf.as_deref(),
@@ -347,6 +349,7 @@ fn run(
                     init_from: None,
                     replicas: 1,
                     sync_every: 0,
+                    ranks: 1,
                 };
                 train::build_model(
                     m,

@@ -318,7 +318,10 @@ mod tests {
             }
             let c = h.clone();
             assert!(c == h);
-            assert_eq!(c.last().copied(), len.checked_sub(1).map(|i| i as f64 * 0.5));
+            assert_eq!(
+                c.last().copied(),
+                len.checked_sub(1).map(|i| i as f64 * 0.5)
+            );
             let from = HugeVec::from(&c[..]);
             assert!(from == h);
             if len * 8 >= HUGE_PAGE {

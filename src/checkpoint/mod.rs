@@ -145,6 +145,20 @@ pub struct CheckpointMeta {
     pub early_stop: EarlyStop,
     /// Log of the finished epochs.
     pub epochs: Vec<EpochLog>,
+    /// A distributed run's position of every rank in its share of the epoch,
+    /// in rank order (empty for a run on one process); `position` is rank
+    /// 0's. A run resumed with as many ranks continues each from here.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub rank_positions: Vec<RankPosition>,
+}
+
+/// Where one rank of a distributed run stands in its share of an epoch.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+pub struct RankPosition {
+    /// Group of shards in progress inside the rank's share.
+    pub group: u32,
+    /// Rows already taken from that group.
+    pub taken: u64,
 }
 
 /// A checkpoint in memory.
@@ -222,6 +236,15 @@ impl Checkpoint {
     /// Load and fully check a checkpoint file.
     pub fn load(path: &Path) -> Result<Checkpoint> {
         let c = open(path)?;
+        c.verify(section_name)?;
+        Self::from_container(&c)
+    }
+
+    /// Load a checkpoint from its bytes (read elsewhere: a distributed run's
+    /// rank 0 reads the file and sends it to the others); `path` names it in
+    /// messages. The same checks as [`Checkpoint::load`].
+    pub fn from_bytes(bytes: &[u8], path: &Path) -> Result<Checkpoint> {
+        let c = Container::parse(bytes, path, Kind::Checkpoint, VERSION..=VERSION)?;
         c.verify(section_name)?;
         Self::from_container(&c)
     }
@@ -375,6 +398,7 @@ mod tests {
                     }),
                     replicas: 1,
                     sync_every: 0,
+                    ranks: 3,
                 },
                 position: Position {
                     epoch: 1,
@@ -393,6 +417,20 @@ mod tests {
                     since_best: 1,
                 },
                 epochs: vec![],
+                rank_positions: vec![
+                    RankPosition {
+                        group: 2,
+                        taken: 300,
+                    },
+                    RankPosition {
+                        group: 0,
+                        taken: 64,
+                    },
+                    RankPosition {
+                        group: 3,
+                        taken: 0,
+                    },
+                ],
             },
             models,
             idf: Some((0..d).map(|i| 1.0 + i as f32 / 7.0).collect()),

@@ -61,6 +61,46 @@ pub fn evaluate(
     classes: usize,
     loss: crate::solver::Loss,
 ) -> Evaluation {
+    evaluate_sums(shards, w, positive, classes, loss).finish()
+}
+
+/// What [`evaluate`] adds up over rows, before the means: parts of a split
+/// evaluated apart (by the ranks of a distributed run) add up to the whole.
+#[derive(Debug, Clone, PartialEq)]
+pub struct EvalSums {
+    /// Sum of the loss (over models for one-vs-rest).
+    pub loss: f64,
+    /// Sum of the hinge loss of the margins.
+    pub hinge: f64,
+    /// Confusion counts `[true][predicted]`.
+    pub confusion: Vec<Vec<u64>>,
+}
+
+impl EvalSums {
+    /// The means and the accuracy.
+    pub fn finish(self) -> Evaluation {
+        let conf = self.confusion;
+        let k = conf.len();
+        let rows: u64 = conf.iter().flatten().sum();
+        let correct: u64 = (0..k).map(|i| conf[i][i]).sum();
+        Evaluation {
+            rows,
+            loss: self.loss / rows.max(1) as f64,
+            hinge: self.hinge / rows.max(1) as f64,
+            accuracy: correct as f64 / rows.max(1) as f64,
+            confusion: conf,
+        }
+    }
+}
+
+/// The sums of [`evaluate`], for [`EvalSums::finish`].
+pub fn evaluate_sums(
+    shards: &[Shard],
+    w: Weights<'_>,
+    positive: Option<u32>,
+    classes: usize,
+    loss: crate::solver::Loss,
+) -> EvalSums {
     let Weights {
         weights,
         biases,
@@ -118,13 +158,9 @@ pub fn evaluate(
             }
         }
     }
-    let rows: u64 = conf.iter().flatten().sum();
-    let correct: u64 = (0..k).map(|i| conf[i][i]).sum();
-    Evaluation {
-        rows,
-        loss: l / rows.max(1) as f64,
-        hinge: hinge / rows.max(1) as f64,
-        accuracy: correct as f64 / rows.max(1) as f64,
+    EvalSums {
+        loss: l,
+        hinge,
         confusion: conf,
     }
 }

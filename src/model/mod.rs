@@ -104,10 +104,20 @@ pub struct TrainSettings {
     /// replicas; every epoch also ends with one. 0 with one replica.
     #[serde(default)]
     pub sync_every: u64,
+    /// Processes of a distributed run (`train --distributed`), each training
+    /// `replicas` replicas on its own share of the shards; 1 (not written) for
+    /// a run on one process. `sync_every` then counts the rows of all of them,
+    /// and 0 mixes at epoch ends only.
+    #[serde(default = "one", skip_serializing_if = "is_one")]
+    pub ranks: u32,
 }
 
 fn one() -> u32 {
     1
+}
+
+fn is_one(x: &u32) -> bool {
+    *x == 1
 }
 
 /// Where a warm start came from.

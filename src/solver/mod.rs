@@ -315,6 +315,34 @@ impl Linear {
         }
     }
 
+    /// Fold the scale into the arrays: `U += B·v`, then `v = s·v`, `s = 1`,
+    /// `B = 0` (the iterate and the sum of iterates keep their values). Returns
+    /// `v`, `U` and the scalars `[s, b, ‖v‖², B, Σb]` for a mix across
+    /// processes, which must put them back with [`Linear::set_scalars`].
+    pub(crate) fn fold_scale(&mut self) -> (&mut [f64], &mut [f64], [f64; 5]) {
+        let (s, big_b) = (self.s, self.big_b);
+        if s != 1.0 || big_b != 0.0 {
+            for (v, u) in self.v.iter_mut().zip(self.u.iter_mut()) {
+                *u += big_b * *v;
+                *v *= s;
+            }
+            self.vnorm2 *= s * s;
+            self.s = 1.0;
+            self.big_b = 0.0;
+        }
+        let scalars = [self.s, self.b, self.vnorm2, self.big_b, self.bias_sum];
+        (&mut self.v, &mut self.u, scalars)
+    }
+
+    /// Set `[s, b, ‖v‖², B, Σb]` (after [`Linear::fold_scale`]).
+    pub(crate) fn set_scalars(&mut self, [s, b, vnorm2, big_b, bias_sum]: [f64; 5]) {
+        self.s = s;
+        self.b = b;
+        self.vnorm2 = vnorm2;
+        self.big_b = big_b;
+        self.bias_sum = bias_sum;
+    }
+
     /// `w·x + b` with the current iterate; indices are masked to the dimension
     /// (a damaged shard cannot index out of bounds).
     #[inline]
