@@ -564,7 +564,6 @@ fn begin(
     let _locks = locks;
 
     let m = distributed::agree(comm, Manifest::load(&opts.dir))?;
-    distributed::check_same_dataset(comm, m.fingerprint())?;
     let positive = trainable_task(&m, &opts.dir)?;
     let ranks = comm.size() as u64;
     let settings = match &resume {
@@ -614,6 +613,11 @@ fn begin(
             }
         }
     };
+    distributed::check_same_run(
+        comm,
+        m.fingerprint(),
+        xxhash_rust::xxh3::xxh3_64(&serde_json::to_vec(&settings).expect("settings serialise")),
+    )?;
     let pool = rayon::ThreadPoolBuilder::new()
         .num_threads(opts.threads.max(1))
         .thread_name(|i| format!("tamis-train-{i}"))
@@ -884,12 +888,12 @@ impl Run<'_> {
                 resumed_part_way = part_way;
                 let mut restart = String::new();
                 if was == ranks && ranks > 1 {
-                    // Each rank continues its own share; the epoch's sums so
-                    // far (of all ranks) count once, on rank 0.
+                    // Each rank continues its own share, and its own sums.
                     match meta.rank_positions.get(rank) {
                         Some(p) if meta.rank_positions.len() == ranks => {
                             position.group = p.group;
                             position.taken = p.taken;
+                            sums = p.sums;
                         }
                         _ => {
                             return Err(Error::Invalid(format!(
@@ -897,9 +901,6 @@ impl Run<'_> {
                                 meta.rank_positions.len()
                             )))
                         }
-                    }
-                    if rank != 0 {
-                        sums = EpochSums::default();
                     }
                 } else if was != ranks && part_way {
                     // Shares of another number of ranks: the epoch starts over.
@@ -1138,7 +1139,7 @@ impl Run<'_> {
                         distributed::mix_across(&mut replicas, comm);
                         since_mix = 0;
                     }
-                    let positions = rank_positions(comm, here);
+                    let positions = rank_positions(comm, here, sums);
                     let snap = Snapshot {
                         replicas: &replicas,
                         position: Position {
@@ -1240,7 +1241,7 @@ impl Run<'_> {
                     early,
                     epochs: &epochs,
                     shards: shard_refs(&all),
-                    ranks: rank_positions(comm, (0, 0)),
+                    ranks: rank_positions(comm, (0, 0), EpochSums::default()),
                 };
                 last_cost = Some(self.write_checkpoint(&snap)?);
                 last_ck = Instant::now();
@@ -1346,17 +1347,29 @@ impl Run<'_> {
     }
 }
 
-/// Every rank's position in its share of the epoch, in rank order (empty for
-/// one process, whose position is the checkpoint's own).
-fn rank_positions(comm: &dyn Collective, here: (u32, u64)) -> Vec<RankPosition> {
+/// Every rank's position in its share of the epoch and its sums so far, in
+/// rank order (empty for one process, whose position is the checkpoint's own).
+fn rank_positions(comm: &dyn Collective, here: (u32, u64), sums: EpochSums) -> Vec<RankPosition> {
     if comm.size() == 1 {
         return Vec::new();
     }
-    comm.gather_u64(&[u64::from(here.0), here.1])
-        .chunks_exact(2)
+    let mine = [
+        u64::from(here.0),
+        here.1,
+        sums.loss.to_bits(),
+        sums.rows,
+        sums.nnz,
+    ];
+    comm.gather_u64(&mine)
+        .chunks_exact(mine.len())
         .map(|c| RankPosition {
             group: c[0] as u32,
             taken: c[1],
+            sums: EpochSums {
+                loss: f64::from_bits(c[2]),
+                rows: c[3],
+                nnz: c[4],
+            },
         })
         .collect()
 }

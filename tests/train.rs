@@ -948,3 +948,16 @@ fn demo_trains_evaluates_and_scores() {
 fn help_explains_every_option() {
     assert_help_explains_everything(&["train"]);
 }
+
+/// A build without MPI refuses --distributed and says how to get it.
+#[cfg(not(feature = "mpi"))]
+#[test]
+fn distributed_needs_a_build_with_mpi() {
+    let t = tmp();
+    let dir = synth_dataset(t.path(), "d", 500, 3, &[]);
+    let model = t.path().join("m.tmm");
+    train(&dir, &model, &["--distributed"]).fails().stderr_has(
+        "--distributed needs a tamis built with MPI: cargo build --release --features mpi",
+    );
+    assert!(!model.exists());
+}

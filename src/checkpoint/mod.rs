@@ -153,12 +153,15 @@ pub struct CheckpointMeta {
 }
 
 /// Where one rank of a distributed run stands in its share of an epoch.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
 pub struct RankPosition {
     /// Group of shards in progress inside the rank's share.
     pub group: u32,
     /// Rows already taken from that group.
     pub taken: u64,
+    /// What the rank has seen of the epoch so far (so that the epoch's sums add
+    /// up in the same order as in a run never interrupted).
+    pub sums: EpochSums,
 }
 
 /// A checkpoint in memory.
@@ -421,14 +424,25 @@ mod tests {
                     RankPosition {
                         group: 2,
                         taken: 300,
+                        sums: EpochSums {
+                            loss: 0.1 + 0.2,
+                            rows: 2,
+                            nnz: 20,
+                        },
                     },
                     RankPosition {
                         group: 0,
                         taken: 64,
+                        sums: EpochSums {
+                            loss: 0.5,
+                            rows: 3,
+                            nnz: 30,
+                        },
                     },
                     RankPosition {
                         group: 3,
                         taken: 0,
+                        sums: EpochSums::default(),
                     },
                 ],
             },

@@ -127,6 +127,14 @@ pub struct Args {
     #[arg(long, value_name = "ROWS")]
     pub sync_every: Option<u64>,
 
+    /// Train as one process (rank) of an MPI job: `mpirun -n P tamis train DIR
+    /// --model FILE --distributed`, or the same under srun. Each rank trains on
+    /// its own share of the shards, and the ranks average their models every
+    /// --sync-every rows (default: at every epoch end). Rank 0 writes the model,
+    /// checkpoints and log. Needs a tamis built with `--features mpi`.
+    #[arg(long)]
+    pub distributed: bool,
+
     /// Threads [default: all cores]. The model does not depend on it (only on
     /// --replicas).
     #[arg(long, short = 'j', value_name = "N")]
@@ -308,6 +316,15 @@ fn install_stop_handler() -> anyhow::Result<Arc<AtomicBool>> {
 
 /// Run `tamis train`.
 pub fn run(a: Args) -> anyhow::Result<ExitCode> {
+    if a.distributed {
+        #[cfg(feature = "mpi")]
+        return distributed::run(a);
+        #[cfg(not(feature = "mpi"))]
+        bail!(
+            "--distributed needs a tamis built with MPI: cargo build --release --features mpi \
+             (with the MPI development files and libclang installed; see the README)"
+        );
+    }
     let log = super::stderr_log(a.quiet);
     let (mut opts, resume) = match &a.resume {
         Some(path) => {
@@ -371,5 +388,137 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
             );
             Ok(ExitCode::from(INTERRUPTED))
         }
+    }
+}
+
+/// `tamis train --distributed`: one rank of an MPI job.
+#[cfg(feature = "mpi")]
+mod distributed {
+    use super::*;
+    use tamis::distributed::{agree, mpi, Collective, PEER_FAILED};
+
+    /// What a rank ends with.
+    enum Ended {
+        Done(Outcome, Box<TrainOptions>, u64),
+        Failed(anyhow::Error),
+    }
+
+    pub fn run(a: Args) -> anyhow::Result<ExitCode> {
+        let Some((_universe, world)) = mpi::start() else {
+            bail!("MPI was started already in this process");
+        };
+        let (rank, ranks) = (world.rank(), world.size());
+        let stop = install_stop_handler()?;
+        let ended = mpi::serve(&world, |comm| match rank_run(&a, comm, stop) {
+            Ok((outcome, opts)) => Ended::Done(outcome, Box::new(opts), comm.bytes_sent()),
+            Err(e) => Ended::Failed(e),
+        });
+        // MPI ends when `_universe` is dropped, on every rank alike: failures
+        // were agreed on, so no rank is left waiting in a collective.
+        match ended {
+            Ended::Failed(e) => {
+                let text = format!("{e:#}");
+                // A failure every rank shares is printed once, by rank 0; one
+                // of some ranks only, by the lowest of them (its message names
+                // it); the others stop quietly.
+                let own = text.contains(&format!("rank {rank}: "));
+                if !text.ends_with(PEER_FAILED) && (rank == 0 || own) {
+                    eprintln!("error: {text}");
+                }
+                Ok(ExitCode::from(1))
+            }
+            Ended::Done(outcome, opts, sent) => {
+                if rank != 0 {
+                    return Ok(match outcome {
+                        Outcome::Finished(_) => ExitCode::SUCCESS,
+                        Outcome::Stopped { .. } => ExitCode::from(INTERRUPTED),
+                    });
+                }
+                match outcome {
+                    Outcome::Finished(r) => {
+                        if !a.quiet {
+                            eprintln!(
+                                "wrote {} ({} model(s) of {} features) in {:.2} s on {ranks} rank(s); \
+                                 rank 0 sent {} to the others",
+                                opts.model.display(),
+                                r.model.models(),
+                                r.model.dim(),
+                                r.seconds,
+                                tamis::util::bytes(sent)
+                            );
+                        }
+                        Ok(ExitCode::SUCCESS)
+                    }
+                    Outcome::Stopped {
+                        checkpoint,
+                        position,
+                    } => {
+                        let abs = std::path::absolute(&checkpoint).unwrap_or(checkpoint);
+                        eprintln!(
+                            "interrupted: saved the training state at epoch {}, step {} to {}",
+                            position.epoch + 1,
+                            position.step,
+                            abs.display()
+                        );
+                        eprintln!("resume with (or the same under your scheduler):");
+                        let me = std::env::args().next().unwrap_or_else(|| "tamis".into());
+                        eprintln!(
+                            "  mpirun -n {ranks} {} train --resume {} --distributed",
+                            shell_quote(Path::new(&me)),
+                            shell_quote(&abs)
+                        );
+                        Ok(ExitCode::from(INTERRUPTED))
+                    }
+                }
+            }
+        }
+    }
+
+    /// One rank's run: options (a resumed run's checkpoint is read by rank 0
+    /// and sent to the others), then training.
+    fn rank_run(
+        a: &Args,
+        comm: &dyn Collective,
+        stop: Arc<AtomicBool>,
+    ) -> anyhow::Result<(Outcome, TrainOptions)> {
+        let rank = comm.rank();
+        let log = super::super::stderr_log(a.quiet || rank != 0);
+        let (mut opts, resume) = match &a.resume {
+            Some(path) => {
+                let read = if rank == 0 {
+                    std::fs::read(path).map_err(|cause| tamis::error::Error::Io {
+                        path: path.clone(),
+                        cause,
+                    })
+                } else {
+                    Ok(Vec::new())
+                };
+                let mut bytes = agree(comm, read)
+                    .with_context(|| format!("cannot resume from {}", path.display()))?;
+                comm.broadcast(&mut bytes);
+                let ck = Checkpoint::from_bytes(&bytes, path)
+                    .with_context(|| format!("cannot resume from {}", path.display()))?;
+                drop(bytes);
+                let o = resume_options(a, &ck, path)?;
+                let r = Resume {
+                    checkpoint: ck,
+                    path: path.clone(),
+                    allow_appended: a.allow_appended,
+                };
+                (o, Some(r))
+            }
+            None => (options(a)?, None),
+        };
+        opts.stop = Some(stop);
+        if rank != 0 {
+            opts.progress = false;
+        }
+        let dir = opts.dir.clone();
+        let outcome = match resume {
+            Some(r) => train::resume_in(&opts, r, log, comm),
+            None => train::train_in(&opts, log, comm),
+        }
+        .with_context(|| format!("training on {} failed", dir.display()))?;
+        Ok((outcome, opts))
     }
 }

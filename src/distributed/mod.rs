@@ -70,43 +70,61 @@ impl Collective for Solo {
 pub const PEER_FAILED: &str = "another rank of the job failed";
 
 /// Make every rank agree on the outcome of a step that each did on its own: if
-/// any rank failed, all return an error: a failing rank its own error, naming
-/// the rank, the others [`PEER_FAILED`]. With one process, `local` as it is.
+/// any rank failed, all return an error, and one message tells what happened:
+/// a failure of every rank is returned as it is (rank 0 prints it), one of
+/// some ranks is returned by the lowest of them naming itself (`rank R: ...`),
+/// and the others return [`PEER_FAILED`] (printed by nobody). With one
+/// process, `local` as it is.
 pub fn agree<T>(comm: &dyn Collective, local: Result<T>) -> Result<T> {
     if comm.size() == 1 {
         return local;
     }
-    let mut flag = [local.is_err() as u64];
-    comm.max_u64(&mut flag);
+    let flags = comm.gather_u64(&[local.is_err() as u64]);
+    let failed: Vec<usize> = (0..flags.len()).filter(|&r| flags[r] != 0).collect();
     match local {
-        Err(e) => Err(Error::Invalid(format!("rank {}: {e}", comm.rank()))),
-        Ok(_) if flag[0] != 0 => Err(Error::Invalid(PEER_FAILED.into())),
-        ok => ok,
+        ok @ Ok(_) if failed.is_empty() => ok,
+        Err(e) if failed.len() == comm.size() => Err(e),
+        Err(e) if failed[0] == comm.rank() => {
+            Err(Error::Invalid(format!("rank {}: {e}", comm.rank())))
+        }
+        _ => Err(Error::Invalid(PEER_FAILED.into())),
     }
 }
 
-/// Check that every rank opened the same dataset (the manifest's fingerprint)
-/// and trains the same task; the message names the ranks that differ.
-pub fn check_same_dataset(comm: &dyn Collective, fingerprint: u64) -> Result<()> {
+/// Check that every rank opened the same dataset (the manifest's
+/// `fingerprint`) and was started with the same training settings (a hash of
+/// them, `settings`); the message names the ranks that differ.
+pub fn check_same_run(comm: &dyn Collective, fingerprint: u64, settings: u64) -> Result<()> {
     if comm.size() == 1 {
         return Ok(());
     }
-    let all = comm.gather_u64(&[fingerprint]);
-    let differ: Vec<String> = all
-        .iter()
-        .enumerate()
-        .filter(|&(_, &f)| f != all[0])
-        .map(|(r, f)| format!("rank {r} has {f:016x}"))
-        .collect();
-    if differ.is_empty() {
-        return Ok(());
+    let all = comm.gather_u64(&[fingerprint, settings]);
+    let differ = |k: usize| -> Vec<String> {
+        all.chunks_exact(2)
+            .enumerate()
+            .filter(|(_, c)| c[k] != all[k])
+            .map(|(r, c)| format!("rank {r} has {:016x}", c[k]))
+            .collect()
+    };
+    let data = differ(0);
+    if !data.is_empty() {
+        return Err(Error::Invalid(format!(
+            "the ranks do not see the same dataset: rank 0 has fingerprint {:016x}, {}; every \
+             rank must open the same dataset (one shared folder, or identical copies of it)",
+            all[0],
+            data.join(", ")
+        )));
     }
-    Err(Error::Invalid(format!(
-        "the ranks do not see the same dataset: rank 0 has fingerprint {:016x}, {}; every rank \
-         must open the same dataset (one shared folder, or identical copies of it)",
-        all[0],
-        differ.join(", ")
-    )))
+    let settings = differ(1);
+    if !settings.is_empty() {
+        return Err(Error::Invalid(format!(
+            "the ranks were started with different training settings (rank 0 has {:016x}, {}): \
+             start every rank with the same options",
+            all[1],
+            settings.join(", ")
+        )));
+    }
+    Ok(())
 }
 
 /// The training shards (indices into `lens`) of `rank` among `ranks` in
@@ -269,6 +287,6 @@ mod tests {
         };
         assert_eq!(exchange(&s, c), c);
         assert!(agree(&s, Ok(1)).is_ok());
-        assert!(check_same_dataset(&s, 5).is_ok());
+        assert!(check_same_run(&s, 5, 6).is_ok());
     }
 }
