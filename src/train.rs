@@ -1031,7 +1031,7 @@ impl Run<'_> {
             let per_stretch = stretch_batches(
                 s.solver.batch,
                 n_rep,
-                sync_rounds,
+                (n_rep > 1 || ranks > 1).then_some(sync_rounds),
                 epoch_rows.div_ceil(ranks),
             );
             let sweep = Sweep {
@@ -1620,22 +1620,21 @@ pub(crate) const STRETCHES_PER_EPOCH: usize = 64;
 
 /// Batches per stretch for `replicas` replicas taking batches of `batch` rows
 /// in turn over an epoch of `epoch_rows` rows, mixing every `sync_rounds`
-/// rounds: whole rounds, at most [`STRETCH_ROWS`] rows and
+/// rounds (`None`: never): whole rounds, at most [`STRETCH_ROWS`] rows and
 /// 1/[`STRETCHES_PER_EPOCH`] of the epoch, and no more than a mixing interval.
 pub(crate) fn stretch_batches(
     batch: usize,
     replicas: usize,
-    sync_rounds: u64,
+    sync_rounds: Option<u64>,
     epoch_rows: usize,
 ) -> usize {
     let round = (batch * replicas).max(1);
     let rounds = (STRETCH_ROWS / round)
         .min(epoch_rows.div_ceil(round) / STRETCHES_PER_EPOCH)
         .max(1);
-    let rounds = if replicas > 1 {
-        rounds.min(sync_rounds.max(1) as usize)
-    } else {
-        rounds
+    let rounds = match sync_rounds {
+        Some(sync) => rounds.min(sync.clamp(1, usize::MAX as u64) as usize),
+        None => rounds,
     };
     rounds * replicas
 }

@@ -275,7 +275,7 @@ fn run(
             epoch,
             batch: opts.batch,
         };
-        let per_stretch = train::stretch_batches(opts.batch, 1, 0, usize::MAX);
+        let per_stretch = train::stretch_batches(opts.batch, 1, None, usize::MAX);
         sweep.run((0, 0), per_stretch, |views, stretch| {
             train::each_batch(views, stretch, 0, 1, |view, batch| {
                 let tallies = lanes.step(view, batch, average);

@@ -273,15 +273,25 @@ fn a_failure_of_one_rank_is_told_once_by_that_rank() {
     assert!(!m.exists());
 }
 
-/// The rank processes that `mpirun` started (its children), with their ranks.
+/// The rank processes that `mpirun` started (its children, found in /proc),
+/// with their ranks.
 fn ranks_of(mpirun: &Child) -> Vec<(u32, usize)> {
-    let out = Command::new("pgrep")
-        .args(["-P", &mpirun.id().to_string()])
-        .output()
-        .expect("pgrep");
-    String::from_utf8_lossy(&out.stdout)
-        .lines()
-        .filter_map(|l| l.trim().parse::<u32>().ok())
+    let parent = mpirun.id();
+    let Ok(procs) = std::fs::read_dir("/proc") else {
+        return Vec::new();
+    };
+    procs
+        .filter_map(|e| e.ok()?.file_name().to_str()?.parse::<u32>().ok())
+        .filter(|pid| {
+            // /proc/PID/stat: "pid (name) state ppid ..."; the name may hold spaces.
+            std::fs::read_to_string(format!("/proc/{pid}/stat"))
+                .ok()
+                .and_then(|st| {
+                    let rest = &st[st.rfind(')')? + 1..];
+                    rest.split_whitespace().nth(1)?.parse::<u32>().ok()
+                })
+                == Some(parent)
+        })
         .filter_map(|pid| {
             let env = std::fs::read(format!("/proc/{pid}/environ")).ok()?;
             let rank = env
