@@ -824,22 +824,36 @@ impl Run<'_> {
         };
         // The token sketch goes into the model; read (and checked) before training.
         let sketch = distributed::agree(comm, dataset::sketch::load(&opts.dir, m))?;
-        let train_entries: Vec<&ShardEntry> = m.shards_of(Split::Train).collect();
+        // Every training shard of the dataset, in the manifest's order.
+        let manifest_train: Vec<&ShardEntry> = m.shards_of(Split::Train).collect();
         let valid_entries: Vec<&ShardEntry> = m.shards_of(Split::Validation).collect();
-        // Every rank maps every training shard (its share changes each epoch)
-        // but checks the sections of a share of them only; it evaluates its
-        // share of the validation shards.
-        let mine = |i: usize| i % ranks == rank;
+        // A dataset split into as many parts as there are ranks: each rank
+        // trains and validates on its own part only, and may hold no other.
+        let by_part = ranks > 1 && m.scatter.parts as usize == ranks;
+        let own_part = |e: &&ShardEntry| e.part as usize == rank;
+        // Otherwise every rank maps every training shard (its share changes
+        // each epoch) but checks the sections of a share of them only; it
+        // evaluates its share of the validation shards.
+        let mine = |i: usize| by_part || i % ranks == rank;
+        let train_entries: Vec<&ShardEntry> = if by_part {
+            manifest_train.iter().copied().filter(own_part).collect()
+        } else {
+            manifest_train.clone()
+        };
         let train = distributed::agree(
             comm,
             open_shards_checking(&opts.dir, m, &train_entries, n_labels, mine),
         )?;
-        let my_valid: Vec<&ShardEntry> = valid_entries
-            .iter()
-            .enumerate()
-            .filter(|&(i, _)| mine(i))
-            .map(|(_, e)| *e)
-            .collect();
+        let my_valid: Vec<&ShardEntry> = if by_part {
+            valid_entries.iter().copied().filter(own_part).collect()
+        } else {
+            valid_entries
+                .iter()
+                .enumerate()
+                .filter(|&(i, _)| mine(i))
+                .map(|(_, e)| *e)
+                .collect()
+        };
         let valid = distributed::agree(comm, open_shards(&opts.dir, m, &my_valid, n_labels))?;
         let all: Vec<usize> = (0..train.len()).collect();
         let targets: Vec<Target> = match positive {
@@ -866,16 +880,21 @@ impl Run<'_> {
         // keeps the shards it started with.
         let mut resumed_part_way = false;
         // Where to begin, and the list of training shards of the first epoch.
+        // The training shards (of every part) that the checkpoint's epoch uses.
+        let mut first_files: Vec<&ShardEntry> = manifest_train.clone();
         let (mut first, mut first_sums, mut early, mut epochs, first_list) = match resume_ck {
             Some(ck) => {
                 let meta = ck.meta;
                 trainer.t = meta.position.step;
                 saved_models = Some(ck.models);
-                let list: Vec<usize> = meta
-                    .shards
-                    .iter()
-                    .filter(|r| r.split == Split::Train)
-                    .filter_map(|r| train_entries.iter().position(|e| e.file == r.file))
+                let listed = |e: &&ShardEntry| {
+                    meta.shards
+                        .iter()
+                        .any(|r| r.split == Split::Train && r.file == e.file)
+                };
+                first_files = manifest_train.iter().copied().filter(listed).collect();
+                let list: Vec<usize> = (0..train_entries.len())
+                    .filter(|&i| listed(&train_entries[i]))
                     .collect();
                 let mut position = meta.position;
                 let mut sums = meta.epoch_sums;
@@ -998,13 +1017,16 @@ impl Run<'_> {
             let from = resumed.map_or((0, 0), |p| (p.group as usize, p.taken));
             // An epoch resumed part-way keeps the shards it started with; shards
             // appended since join when an epoch starts.
-            let epoch_shards = if epoch == start_epoch && resumed.is_some() && resumed_part_way {
-                &first_list
+            let part_way = epoch == start_epoch && resumed.is_some() && resumed_part_way;
+            let (epoch_shards, epoch_files) = if part_way {
+                (&first_list, &first_files)
             } else {
-                &all
+                (&all, &manifest_train)
             };
-            // This rank's share of them.
-            let list: Vec<usize> = {
+            // This rank's share of them (its part's, when split by part).
+            let list: Vec<usize> = if by_part {
+                epoch_shards.clone()
+            } else {
                 let shard_lens: Vec<usize> = epoch_shards.iter().map(|&i| lens[i]).collect();
                 distributed::share(&shard_lens, s.seed, epoch, rank, ranks)
                     .into_iter()
@@ -1024,10 +1046,10 @@ impl Run<'_> {
             if let Some(b) = &bar {
                 b.set_position(sums.rows);
             }
-            let shard_refs = |list: &[usize]| self.shard_refs(&train_entries, &valid_entries, list);
+            let shard_refs = |files: &[&ShardEntry]| self.shard_refs(files, &valid_entries);
             let mut stopped = None;
             // The same stretches on every rank: cut by the epoch's rows per rank.
-            let epoch_rows: usize = epoch_shards.iter().map(|&i| lens[i]).sum();
+            let epoch_rows: usize = epoch_files.iter().map(|e| e.rows as usize).sum();
             let per_stretch = stretch_batches(
                 s.solver.batch,
                 n_rep,
@@ -1152,7 +1174,7 @@ impl Run<'_> {
                         sums: global_sums(comm, sums),
                         early,
                         epochs: &epochs,
-                        shards: shard_refs(epoch_shards),
+                        shards: shard_refs(epoch_files),
                         ranks: positions,
                     };
                     last_cost = Some(self.write_checkpoint(&snap)?);
@@ -1240,7 +1262,7 @@ impl Run<'_> {
                     sums: EpochSums::default(),
                     early,
                     epochs: &epochs,
-                    shards: shard_refs(&all),
+                    shards: shard_refs(&manifest_train),
                     ranks: rank_positions(comm, (0, 0), EpochSums::default()),
                 };
                 last_cost = Some(self.write_checkpoint(&snap)?);
@@ -1284,17 +1306,12 @@ impl Run<'_> {
     }
 
     /// The shards a checkpoint lists: the training shards of the epoch in
-    /// progress and every validation shard.
-    fn shard_refs(
-        &self,
-        train: &[&ShardEntry],
-        valid: &[&ShardEntry],
-        list: &[usize],
-    ) -> Vec<ShardRef> {
-        let mut idx = list.to_vec();
-        idx.sort_unstable();
-        idx.iter()
-            .map(|&i| train[i])
+    /// progress (of every rank and part, in the manifest's order) and every
+    /// validation shard.
+    fn shard_refs(&self, train: &[&ShardEntry], valid: &[&ShardEntry]) -> Vec<ShardRef> {
+        train
+            .iter()
+            .copied()
             .chain(valid.iter().copied())
             .map(|e| ShardRef {
                 file: e.file.clone(),

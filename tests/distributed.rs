@@ -494,3 +494,96 @@ fn a_stop_signal_saves_a_checkpoint_that_resumes() {
     assert_eq!(st["ranks"], 2);
     assert_eq!(st["epochs"], 8);
 }
+
+/// A dataset ingested in 2 parts, each node holding only its own (copied with
+/// `stats --part-files`): 2 ranks each train on their part, and give the same
+/// model, byte for byte, as 2 ranks on one shared folder holding both.
+#[test]
+fn ranks_on_nodes_that_hold_only_their_part() {
+    let t = tmp();
+    let tsv = t.path().join("in.tsv");
+    synth_tsv(&tsv, 40_000, 12);
+    let ds = t.path().join("ds");
+    ingest(
+        &[&tsv],
+        &ds,
+        &[
+            "--positive",
+            "spam",
+            "--log2-buckets",
+            "16",
+            "--shard-rows",
+            "5000",
+            "--parts",
+            "2",
+            "-q",
+        ],
+    )
+    .ok();
+    let mut nodes = Vec::new();
+    for k in 0..2 {
+        let node = t.path().join(format!("node{k}"));
+        std::fs::create_dir(&node).unwrap();
+        let o = tamis(["stats", s(&ds), "--part-files", &k.to_string()]);
+        o.ok();
+        for f in o.stdout.lines() {
+            std::fs::copy(ds.join(f), node.join(f)).unwrap();
+        }
+        nodes.push(node);
+    }
+    let shared = t.path().join("shared.tmm");
+    mpirun(
+        2,
+        &[
+            "train",
+            s(&ds),
+            "--model",
+            s(&shared),
+            "--distributed",
+            "-q",
+        ],
+    )
+    .ok();
+    let split = t.path().join("split.tmm");
+    let o = Command::new("mpirun")
+        .args(["--oversubscribe", "-n", "1", bin(), "train", s(&nodes[0])])
+        .args([
+            "--model",
+            s(&split),
+            "--distributed",
+            "-q",
+            ":",
+            "-n",
+            "1",
+            bin(),
+        ])
+        .args(["train", s(&nodes[1]), "--model"])
+        .arg(t.path().join("unused.tmm"))
+        .args(["--distributed", "-q"])
+        .env("OMPI_ALLOW_RUN_AS_ROOT", "1")
+        .env("OMPI_ALLOW_RUN_AS_ROOT_CONFIRM", "1")
+        .output()
+        .unwrap();
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    assert!(
+        std::fs::read(&split).unwrap() == std::fs::read(&shared).unwrap(),
+        "per-node parts and a shared folder give different models"
+    );
+    assert!(
+        !t.path().join("unused.tmm").exists(),
+        "rank 1 wrote a model"
+    );
+    // One rank cannot train on a node holding one part.
+    mpirun(
+        1,
+        &[
+            "train",
+            s(&nodes[0]),
+            "--model",
+            s(&split),
+            "--distributed",
+            "-q",
+        ],
+    )
+    .fails();
+}

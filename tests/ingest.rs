@@ -1594,3 +1594,100 @@ fn help_explains_every_option() {
     let o = tamis(["help", "ingest"]);
     o.ok().stdout_has("--max-bad-fraction");
 }
+
+/// `--parts 3`: every shard belongs to one part, each part gets about a third
+/// of the training and of the validation rows, the split and the rows are those
+/// of the dataset in one piece (only their shards differ), `--append` keeps the
+/// parts, `stats --part-files K` lists what a node of part K needs and
+/// `verify --part K` checks only that.
+#[test]
+fn parts_split_the_rows_for_the_nodes_of_a_cluster() {
+    let t = tmp();
+    let tsv = t.path().join("in.tsv");
+    synth_tsv(&tsv, 30_000, 8);
+    let whole = t.path().join("whole");
+    let parts = t.path().join("parts");
+    ingest(&[&tsv], &whole, &["--shard-rows", "2000", "-q"]).ok();
+    ingest(
+        &[&tsv],
+        &parts,
+        &["--shard-rows", "2000", "--parts", "3", "-q"],
+    )
+    .ok();
+    let m = manifest(&parts);
+    assert_eq!(m.scatter.parts, 3);
+    assert_eq!(
+        m.scatter.writers, 9,
+        "8 writers rounded up to a multiple of 3"
+    );
+    for split in [Split::Train, Split::Validation] {
+        let per: Vec<u64> = (0..3)
+            .map(|k| {
+                m.shards_of(split)
+                    .filter(|s| s.part == k)
+                    .map(|s| s.rows)
+                    .sum()
+            })
+            .collect();
+        let total: u64 = per.iter().sum();
+        for &n in &per {
+            // Binomial share of a third: standard deviation under 1% of the rows.
+            assert!(
+                (n as f64 - total as f64 / 3.0).abs() < 0.05 * total as f64,
+                "{split:?} rows per part {per:?}"
+            );
+        }
+    }
+    // The same rows (by content) in each split, whatever the parts.
+    for split in [Split::Train, Split::Validation] {
+        let mut a = row_keys(&rows(&whole, Some(split)));
+        let mut b = row_keys(&rows(&parts, Some(split)));
+        a.sort();
+        b.sort();
+        assert!(a == b, "{split:?} rows differ");
+    }
+    // A dataset in one piece writes no part fields at all.
+    let text = std::fs::read_to_string(whole.join("manifest.json")).unwrap();
+    assert!(!text.contains("\"part"), "{text}");
+    // Appending keeps the parts; another count is refused.
+    ingest(&[&tsv], &parts, &["--append", "--parts", "2"])
+        .fails()
+        .stderr_has("--parts");
+    ingest(&[&tsv], &parts, &["--append", "-q"]).ok();
+    let m = manifest(&parts);
+    assert!(m.shards.iter().all(|s| s.part < 3));
+    assert_eq!(
+        m.shards
+            .iter()
+            .filter(|s| s.batch == 1)
+            .map(|s| s.part)
+            .max(),
+        Some(2)
+    );
+    // What node 1 needs: the common files and its own shards.
+    let o = tamis(["stats", s(&parts), "--part-files", "1"]);
+    o.ok();
+    let listed: Vec<&str> = o.stdout.lines().collect();
+    let mut want = vec!["manifest.json".to_string()];
+    want.extend(m.doc_freq.iter().map(|d| d.file.clone()));
+    want.extend(m.sketches.iter().map(|d| d.file.clone()));
+    want.extend(
+        m.shards
+            .iter()
+            .filter(|s| s.part == 1)
+            .map(|s| s.file.clone()),
+    );
+    assert_eq!(listed, want);
+    tamis(["stats", s(&parts), "--part-files", "3"])
+        .fails()
+        .stderr_has("part 3 does not exist: the dataset has 3 part(s)");
+    assert!(tamis(["stats", s(&parts)]).stdout.contains("parts"));
+    // A node of part 1 alone: its check passes, the whole check does not.
+    let node = t.path().join("node1");
+    std::fs::create_dir(&node).unwrap();
+    for f in &want {
+        std::fs::copy(parts.join(f), node.join(f)).unwrap();
+    }
+    tamis(["verify", s(&node), "--part", "1"]).ok();
+    tamis(["verify", s(&node)]).fails();
+}

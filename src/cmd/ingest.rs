@@ -129,7 +129,7 @@ pub struct Args {
     #[arg(long, value_name = "FRACTION", default_value_t = 0.01)]
     pub max_bad_fraction: f64,
 
-    /// Close a shard after this many rows [default: 262144].
+    /// Close a shard after this many rows [default: 1048576].
     #[arg(long, value_name = "ROWS")]
     pub shard_rows: Option<u64>,
 
@@ -137,6 +137,14 @@ pub struct Args {
     /// time or label is mixed [default: 8].
     #[arg(long, value_name = "W")]
     pub scatter: Option<u32>,
+
+    /// Split the dataset into P parts, one per node of a cluster that trains
+    /// with `train --distributed` on P ranks: each training and validation shard
+    /// belongs to one part, and a node needs only its own part's shards (listed
+    /// by `tamis stats DIR --part-files K`) [default: 1]. --scatter is rounded up
+    /// to a multiple of P.
+    #[arg(long, value_name = "P")]
+    pub parts: Option<u32>,
 
     /// Do not wait for shards to reach the disk before the manifest names them:
     /// faster where the disk is slower than hashing, but a power loss during or
@@ -184,6 +192,7 @@ pub fn options(a: &Args) -> anyhow::Result<IngestOptions> {
             positive: a.positive.clone(),
             shard_rows: a.shard_rows,
             scatter: a.scatter,
+            parts: a.parts,
             mask_digits: a.mask_digits.then_some(true),
             mask_emails: a.mask_emails.then_some(true),
             no_sketch: a.no_sketch,

@@ -22,6 +22,12 @@ pub struct Args {
     /// Also list every shard.
     #[arg(long)]
     pub shards: bool,
+
+    /// Print only the files that a node holding part K of a split dataset
+    /// (`ingest --parts`) needs, one per line, relative to DIR: for `rsync
+    /// --files-from` or `tar -T`.
+    #[arg(long, value_name = "K", conflicts_with_all = ["json", "shards"])]
+    pub part_files: Option<u32>,
 }
 
 /// Print the human-readable summary of `s`.
@@ -74,6 +80,25 @@ pub fn print(s: &dataset::Stats, shards: bool, out: &mut impl Write) -> std::io:
             thousands(s.lossy_utf8_rows)
         )?;
     }
+    if s.parts > 1 {
+        let per_part: Vec<String> = (0..s.parts)
+            .map(|k| {
+                let rows: u64 = s
+                    .shards
+                    .iter()
+                    .filter(|x| x.part == k)
+                    .map(|x| x.rows)
+                    .sum();
+                format!("{k}: {}", thousands(rows))
+            })
+            .collect();
+        writeln!(
+            out,
+            "parts       {:>14}   rows per part: {}",
+            s.parts,
+            per_part.join(", ")
+        )?;
+    }
     match &s.positive {
         Some(p) => writeln!(out, "task        binary, positive label {p:?}")?,
         None => writeln!(out, "task        {} classes, one-vs-rest", s.labels.len())?,
@@ -97,21 +122,29 @@ pub fn print(s: &dataset::Stats, shards: bool, out: &mut impl Write) -> std::io:
     }
     if shards {
         writeln!(out)?;
+        let part = |x: String| if s.parts > 1 { x } else { String::new() };
         writeln!(
             out,
-            "{:<20} {:<10} {:>10} {:>12} {:>10} {:>5}",
-            "shard", "split", "rows", "nonzeros", "size", "batch"
+            "{:<20} {:<10} {:>10} {:>12} {:>10} {:>5}{}",
+            "shard",
+            "split",
+            "rows",
+            "nonzeros",
+            "size",
+            "batch",
+            part(format!(" {:>5}", "part"))
         )?;
         for sh in &s.shards {
             writeln!(
                 out,
-                "{:<20} {:<10} {:>10} {:>12} {:>10} {:>5}",
+                "{:<20} {:<10} {:>10} {:>12} {:>10} {:>5}{}",
                 sh.file,
                 format!("{:?}", sh.split).to_lowercase(),
                 thousands(sh.rows),
                 thousands(sh.nnz),
                 bytes(sh.bytes),
-                sh.batch
+                sh.batch,
+                part(format!(" {:>5}", sh.part))
             )?;
         }
     }
@@ -120,6 +153,15 @@ pub fn print(s: &dataset::Stats, shards: bool, out: &mut impl Write) -> std::io:
 
 /// Run `tamis stats`.
 pub fn run(a: Args) -> anyhow::Result<ExitCode> {
+    if let Some(k) = a.part_files {
+        let files = dataset::part_files(&a.dir, k)
+            .with_context(|| format!("cannot read dataset {}", a.dir.display()))?;
+        let mut out = std::io::stdout().lock();
+        for f in files {
+            writeln!(out, "{f}")?;
+        }
+        return Ok(ExitCode::SUCCESS);
+    }
     let s = dataset::stats(&a.dir)
         .with_context(|| format!("cannot read dataset {}", a.dir.display()))?;
     let mut out = std::io::stdout().lock();

@@ -16,13 +16,19 @@ pub struct Args {
     /// model, checkpoint, token sketch or manifest).
     #[arg(value_name = "PATH")]
     pub path: PathBuf,
+
+    /// With a dataset folder split into parts (`ingest --parts`): check only
+    /// the shards of part K (what a node holding that part has), besides the
+    /// manifest and the other common files.
+    #[arg(long, value_name = "K")]
+    pub part: Option<u32>,
 }
 
 /// Run `tamis verify`.
 pub fn run(a: Args) -> anyhow::Result<ExitCode> {
     let p = &a.path;
     if p.is_dir() {
-        let r = dataset::verify(p)?;
+        let r = dataset::verify_part(p, a.part)?;
         for e in &r.problems {
             eprintln!("damaged: {e}");
         }

@@ -80,6 +80,8 @@ pub struct Choices {
     pub shard_rows: Option<u64>,
     /// Open training shard writers.
     pub scatter: Option<u32>,
+    /// Parts the dataset is split into, one per node of a cluster.
+    pub parts: Option<u32>,
     /// Replace digit runs by a placeholder before hashing.
     pub mask_digits: Option<bool>,
     /// Replace e-mail-like spans by a placeholder before hashing.
@@ -218,10 +220,17 @@ fn new_manifest(opts: &IngestOptions) -> Result<Manifest> {
         )));
     }
     let shard_rows = c.shard_rows.unwrap_or(DEFAULT_SHARD_ROWS);
-    let writers = c.scatter.unwrap_or(DEFAULT_SCATTER);
-    if shard_rows == 0 || !(1..=1024).contains(&writers) {
+    let parts = c.parts.unwrap_or(1);
+    if !(1..=1024).contains(&parts) {
+        return Err(Error::Invalid(format!(
+            "--parts must be in 1..=1024, got {parts}"
+        )));
+    }
+    // Every part gets as many training writers (rounded up).
+    let writers = c.scatter.unwrap_or(DEFAULT_SCATTER).max(1).div_ceil(parts) * parts;
+    if shard_rows == 0 || !(1..=1024).contains(&writers) || c.scatter == Some(0) {
         return Err(Error::Invalid(
-            "--shard-rows must be positive and --scatter in 1..=1024".into(),
+            "--shard-rows must be positive and --scatter in 1..=1024 (rounded up to a multiple of --parts)".into(),
         ));
     }
     Ok(Manifest {
@@ -240,6 +249,7 @@ fn new_manifest(opts: &IngestOptions) -> Result<Manifest> {
             seed: seed_for(seed, "scatter"),
             writers,
             shard_rows,
+            parts,
         },
         labels: vec![],
         shards: vec![],
@@ -299,7 +309,16 @@ fn check_append(m: &Manifest, opts: &IngestOptions, path: &Path) -> Result<()> {
         c.shard_rows.as_ref(),
         &m.scatter.shard_rows,
     )?;
-    agree(path, "--scatter", c.scatter.as_ref(), &m.scatter.writers)?;
+    agree(path, "--parts", c.parts.as_ref(), &m.scatter.parts)?;
+    if let Some(w) = c.scatter {
+        // The stored count was rounded up to a multiple of the parts.
+        agree(
+            path,
+            "--scatter",
+            Some(&(w.max(1).div_ceil(m.scatter.parts) * m.scatter.parts)),
+            &m.scatter.writers,
+        )?;
+    }
     agree(path, "text fields", Some(&opts.spec.text), &f.text_fields)?;
     agree(
         path,
@@ -571,6 +590,28 @@ impl Drop for Written {
     }
 }
 
+/// Salt of the validation rows' part choice (the training rows' writer choice
+/// uses the scatter seed itself).
+const VALID_PART: u64 = 0x7661_6c69_6470_6172;
+
+/// Which writer a row goes to.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum Slot {
+    /// Training writer `i` (of part `i mod parts`).
+    Train(usize),
+    /// The validation writer of part `p`.
+    Validation(usize),
+}
+
+impl Slot {
+    fn split(self) -> Split {
+        match self {
+            Slot::Train(_) => Split::Train,
+            Slot::Validation(_) => Split::Validation,
+        }
+    }
+}
+
 /// The writer stage.
 struct Sink {
     dir: PathBuf,
@@ -579,10 +620,13 @@ struct Sink {
     cols: u64,
     label_ids: HashMap<String, u32>,
     train: Vec<Option<ShardWriter>>,
-    val: Option<ShardWriter>,
+    /// One validation writer per part.
+    val: Vec<Option<ShardWriter>>,
     new_shards: Vec<ShardEntry>,
     written: Written,
     train_index: u64,
+    /// Validation rows of the dataset before this one (chooses its part).
+    val_index: u64,
     train_rows: u64,
     val_rows: u64,
     nnz: u64,
@@ -622,16 +666,18 @@ impl Sink {
             .collect();
         let batch = m.batches.len() as u32;
         let writers = m.scatter.writers as usize;
+        let parts = m.scatter.parts.max(1);
         Sink {
             dir: dir.to_path_buf(),
             cols: m.features.buckets(),
             train_index: m.train_rows(),
+            val_index: m.validation_rows(),
             per_input: vec![(0, 0); names.len()],
             m,
             batch,
             label_ids,
             train: (0..writers).map(|_| None).collect(),
-            val: None,
+            val: (0..parts).map(|_| None).collect(),
             new_shards: vec![],
             written: Written {
                 paths: vec![],
@@ -668,46 +714,50 @@ impl Sink {
         ShardWriter::with_capacity(&path, self.cols, DEFAULT_NNZ_CAPACITY.max(row_nnz as u64))
     }
 
-    /// Push a row to the writer in `slot`, opening, closing and reopening it as
-    /// needed (a shard closes after `shard_rows` rows or when full).
-    fn push_to(&mut self, slot: Option<usize>, label: u32, idx: &[u32], val: &[f32]) -> Result<()> {
-        let split = if slot.is_some() {
-            Split::Train
-        } else {
-            Split::Validation
-        };
+    /// Push a row to the writer of `slot`, opening, closing and reopening it
+    /// as needed (a shard closes after `shard_rows` rows or when full).
+    fn push_to(&mut self, slot: Slot, label: u32, idx: &[u32], val: &[f32]) -> Result<()> {
         let full = match self.writer(slot) {
             Some(w) => !w.fits(idx.len()),
             None => false,
         };
         if full {
             let w = self.writer(slot).take().expect("open");
-            self.close_writer(w, split)?;
+            self.close_writer(w, slot)?;
         }
         if self.writer(slot).is_none() {
-            let w = self.open_writer(split, idx.len())?;
+            let w = self.open_writer(slot.split(), idx.len())?;
             *self.writer(slot) = Some(w);
         }
         let w = self.writer(slot).as_mut().expect("opened");
         w.push(label, idx, val)?;
         if w.rows() >= self.m.scatter.shard_rows {
             let w = self.writer(slot).take().expect("open");
-            self.close_writer(w, split)?;
+            self.close_writer(w, slot)?;
         }
         Ok(())
     }
 
-    fn writer(&mut self, slot: Option<usize>) -> &mut Option<ShardWriter> {
+    fn writer(&mut self, slot: Slot) -> &mut Option<ShardWriter> {
         match slot {
-            Some(i) => &mut self.train[i],
-            None => &mut self.val,
+            Slot::Train(i) => &mut self.train[i],
+            Slot::Validation(p) => &mut self.val[p],
         }
     }
 
-    fn close_writer(&mut self, w: ShardWriter, split: Split) -> Result<()> {
+    /// The part a writer's shards belong to.
+    fn part_of(&self, slot: Slot) -> u32 {
+        match slot {
+            Slot::Train(i) => (i as u32) % self.m.scatter.parts.max(1),
+            Slot::Validation(p) => p as u32,
+        }
+    }
+
+    fn close_writer(&mut self, w: ShardWriter, slot: Slot) -> Result<()> {
         let info = w.finish_with(false)?;
         self.sync_later(info.path.clone())?;
-        self.record(info, split);
+        let part = self.part_of(slot);
+        self.record(info, slot.split(), part);
         Ok(())
     }
 
@@ -730,7 +780,7 @@ impl Sink {
         Ok(())
     }
 
-    fn record(&mut self, info: crate::shard::ShardInfo, split: Split) {
+    fn record(&mut self, info: crate::shard::ShardInfo, split: Split, part: u32) {
         self.new_shards.push(ShardEntry {
             file: info
                 .path
@@ -743,6 +793,7 @@ impl Sink {
             bytes: info.bytes,
             checksum: format!("{:016x}", info.checksum),
             batch: self.batch,
+            part,
         });
     }
 
@@ -784,13 +835,25 @@ impl Sink {
             }
             let (idx, val) = (&c.indices[rstart..rend], &c.values[rstart..rend]);
             if validation {
-                self.push_to(None, label, idx, val)?;
+                // A validation row's part, by the hash of its number (one part:
+                // no hash, as before parts existed).
+                let part = match self.m.scatter.parts as u64 {
+                    0 | 1 => 0,
+                    parts => {
+                        (xxh3_64_with_seed(
+                            &self.val_index.to_le_bytes(),
+                            scatter_seed ^ VALID_PART,
+                        ) % parts) as usize
+                    }
+                };
+                self.val_index += 1;
+                self.push_to(Slot::Validation(part), label, idx, val)?;
                 self.val_rows += 1;
             } else {
                 let slot = (xxh3_64_with_seed(&self.train_index.to_le_bytes(), scatter_seed)
                     % writers) as usize;
                 self.train_index += 1;
-                self.push_to(Some(slot), label, idx, val)?;
+                self.push_to(Slot::Train(slot), label, idx, val)?;
                 self.train_rows += 1;
             }
             self.nnz += idx.len() as u64;
@@ -877,17 +940,22 @@ impl Sink {
         for h in std::mem::take(&mut self.syncs) {
             join_sync(h)?;
         }
-        let mut open: Vec<(ShardWriter, Split)> = self
+        let mut open: Vec<(ShardWriter, Slot)> = self
             .train
             .iter_mut()
-            .filter_map(Option::take)
-            .map(|w| (w, Split::Train))
+            .enumerate()
+            .filter_map(|(i, w)| Some((w.take()?, Slot::Train(i))))
             .collect();
-        open.extend(self.val.take().map(|w| (w, Split::Validation)));
-        let finished: Vec<Result<(crate::shard::ShardInfo, Split)>> = std::thread::scope(|s| {
+        open.extend(
+            self.val
+                .iter_mut()
+                .enumerate()
+                .filter_map(|(p, w)| Some((w.take()?, Slot::Validation(p)))),
+        );
+        let finished: Vec<Result<(crate::shard::ShardInfo, Slot)>> = std::thread::scope(|s| {
             let handles: Vec<_> = open
                 .into_iter()
-                .map(|(w, split)| s.spawn(move || w.finish_with(durable).map(|i| (i, split))))
+                .map(|(w, slot)| s.spawn(move || w.finish_with(durable).map(|i| (i, slot))))
                 .collect();
             handles
                 .into_iter()
@@ -899,8 +967,9 @@ impl Sink {
                 .collect()
         });
         for f in finished {
-            let (info, split) = f?;
-            self.record(info, split);
+            let (info, slot) = f?;
+            let part = self.part_of(slot);
+            self.record(info, slot.split(), part);
         }
         let df_name = format!("docfreq-{:06}.tmd", self.m.next_shard);
         self.m.next_shard += 1;

@@ -66,6 +66,22 @@ pub struct ShardEntry {
     pub checksum: String,
     /// The ingest batch that wrote it.
     pub batch: u32,
+    /// The part of the dataset it belongs to (`ingest --parts`; 0, not
+    /// written, in a dataset of one part).
+    #[serde(default, skip_serializing_if = "is_zero")]
+    pub part: u32,
+}
+
+fn is_zero(x: &u32) -> bool {
+    *x == 0
+}
+
+fn one() -> u32 {
+    1
+}
+
+fn is_one(x: &u32) -> bool {
+    *x == 1
 }
 
 /// One document-frequency file (one per ingest batch).
@@ -115,6 +131,12 @@ pub struct ScatterRule {
     pub writers: u32,
     /// Rows at which a shard is closed.
     pub shard_rows: u64,
+    /// Parts the dataset is split into (`ingest --parts P`), so that each node
+    /// of a cluster can hold only its own: training writer `i` writes part
+    /// `i mod P`, and each validation row goes to the part its hash picks. 1 (not
+    /// written) for a dataset in one piece.
+    #[serde(default = "one", skip_serializing_if = "is_one")]
+    pub parts: u32,
 }
 
 /// What one input contributed.
@@ -349,6 +371,7 @@ pub(crate) mod tests {
                 seed: 4,
                 writers: 4,
                 shard_rows: 100,
+                parts: 2,
             },
             labels: vec![LabelEntry {
                 name: "spam".into(),
@@ -363,6 +386,7 @@ pub(crate) mod tests {
                 bytes: 1000,
                 checksum: "0123456789abcdef".into(),
                 batch: 0,
+                part: 1,
             }],
             doc_freq: vec![],
             sketches: vec![],

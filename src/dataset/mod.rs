@@ -71,13 +71,26 @@ pub struct VerifyReport {
 /// Recompute every checksum of the dataset in `dir`: manifest, shards (all
 /// sections, structure, labels) and document-frequency files.
 pub fn verify(dir: &Path) -> Result<VerifyReport> {
+    verify_part(dir, None)
+}
+
+/// [`verify`], with the shards of one part only (`ingest --parts`: what a node
+/// holding that part has) when `part` is given.
+pub fn verify_part(dir: &Path, part: Option<u32>) -> Result<VerifyReport> {
     let m = Manifest::load(dir)?;
+    if let Some(k) = part.filter(|&k| k >= m.scatter.parts.max(1)) {
+        return Err(Error::Invalid(format!(
+            "{}: part {k} does not exist: the dataset has {} part(s), numbered from 0",
+            dir.display(),
+            m.scatter.parts.max(1)
+        )));
+    }
     let mut r = VerifyReport {
         checked: 1,
         ..Default::default()
     };
     let n_labels = m.labels.len() as u32;
-    for e in &m.shards {
+    for e in m.shards.iter().filter(|e| part.is_none_or(|k| e.part == k)) {
         r.checked += 1;
         match open_shard(dir, e).and_then(|s| {
             s.verify(Some(n_labels))?;
@@ -163,6 +176,8 @@ pub struct ShardStats {
     pub bytes: u64,
     /// Ingest batch.
     pub batch: u32,
+    /// Part (`ingest --parts`).
+    pub part: u32,
 }
 
 /// Summary of a dataset (`tamis stats`).
@@ -204,6 +219,32 @@ pub struct Stats {
     pub shards: Vec<ShardStats>,
     /// Bytes of all shards.
     pub shard_bytes: u64,
+    /// Parts the dataset is split into (`ingest --parts`).
+    pub parts: u32,
+}
+
+/// The files a node holding part `part` of the dataset in `dir` needs, relative
+/// to the folder: the manifest, the document-frequency and sketch files, and
+/// the shards of that part.
+pub fn part_files(dir: &Path, part: u32) -> Result<Vec<String>> {
+    let m = Manifest::load(dir)?;
+    if part >= m.scatter.parts.max(1) {
+        return Err(Error::Invalid(format!(
+            "{}: part {part} does not exist: the dataset has {} part(s), numbered from 0",
+            dir.display(),
+            m.scatter.parts.max(1)
+        )));
+    }
+    let mut files = vec![manifest::MANIFEST_FILE.to_string()];
+    files.extend(m.doc_freq.iter().map(|d| d.file.clone()));
+    files.extend(m.sketches.iter().map(|s| s.file.clone()));
+    files.extend(
+        m.shards
+            .iter()
+            .filter(|s| s.part == part)
+            .map(|s| s.file.clone()),
+    );
+    Ok(files)
 }
 
 /// Compute [`Stats`] for the dataset in `dir` (reads the manifest and the
@@ -268,8 +309,10 @@ pub fn stats(dir: &Path) -> Result<Stats> {
                 nnz: s.nnz,
                 bytes: s.bytes,
                 batch: s.batch,
+                part: s.part,
             })
             .collect(),
         shard_bytes: m.shards.iter().map(|s| s.bytes).sum(),
+        parts: m.scatter.parts.max(1),
     })
 }
