@@ -63,41 +63,6 @@ fn spam_dataset(dir: &Path, name: &str, rows: u64) -> PathBuf {
     out
 }
 
-/// λ/2·‖w‖² + mean hinge loss of a binary model on the training rows, and
-/// its validation accuracy.
-fn objective_and_accuracy(model: &Path, ds: &Path, lambda: f64) -> (f64, f64) {
-    let bytes = std::fs::read(model).unwrap();
-    let w = f32_section(&bytes, MODEL_WEIGHTS);
-    let b = f32_section(&bytes, MODEL_BIASES)[0] as f64;
-    let positive = model_meta(model)["positive"].as_str().unwrap().to_string();
-    let margin = |r: &Row| {
-        r.indices
-            .iter()
-            .zip(&r.values)
-            .map(|(&i, &v)| w[i as usize] as f64 * v as f64)
-            .sum::<f64>()
-            + b
-    };
-    let train = rows(ds, Some(Split::Train));
-    let loss: f64 = train
-        .iter()
-        .map(|r| {
-            let y = if r.label == positive { 1.0 } else { -1.0 };
-            (1.0 - y * margin(r)).max(0.0)
-        })
-        .sum();
-    let reg = w.iter().map(|&x| x as f64 * x as f64).sum::<f64>() * lambda / 2.0;
-    let valid = rows(ds, Some(Split::Validation));
-    let right = valid
-        .iter()
-        .filter(|r| (margin(r) > 0.0) == (r.label == positive))
-        .count();
-    (
-        reg + loss / train.len() as f64,
-        right as f64 / valid.len() as f64,
-    )
-}
-
 /// One rank is the run on one process, byte for byte: with replicas that mix
 /// inside the epoch, and with a one-vs-rest task.
 #[test]
@@ -181,8 +146,8 @@ fn two_ranks_reach_the_single_process_accuracy_and_objective() {
     assert_eq!(st["sync_every"], 0);
     assert!(model_meta(&single)["training"].get("ranks").is_none());
     let lam: f64 = lambda.parse().unwrap();
-    let (obj1, acc1) = objective_and_accuracy(&single, &ds, lam);
-    let (obj2, acc2) = objective_and_accuracy(&two[0], &ds, lam);
+    let (obj1, acc1) = binary_objective_and_accuracy(&single, &ds, lam);
+    let (obj2, acc2) = binary_objective_and_accuracy(&two[0], &ds, lam);
     eprintln!(
         "one process: objective {obj1:.5}, accuracy {acc1:.4}; two ranks: {obj2:.5}, {acc2:.4}"
     );
@@ -353,6 +318,28 @@ fn spawn_two_ranks(ds: &Path, model: &Path, ck: &Path, epochs: &str) -> Child {
     .expect("mpirun")
 }
 
+/// Wait until both ranks of `job` run and its checkpoint `ck` stands where
+/// `at` accepts (given its `position`); the ranks' processes.
+fn wait_for_checkpoint(
+    job: &mut Child,
+    ck: &Path,
+    at: impl Fn(&serde_json::Value) -> bool,
+) -> Vec<(u32, usize)> {
+    let start = Instant::now();
+    loop {
+        assert!(
+            start.elapsed() < Duration::from_secs(120),
+            "no such checkpoint came"
+        );
+        let ranks = ranks_of(job);
+        if ck.exists() && ranks.len() == 2 && at(&checkpoint_meta(ck)["position"]) {
+            return ranks;
+        }
+        assert!(job.try_wait().unwrap().is_none(), "the job ended first");
+        std::thread::sleep(Duration::from_millis(5));
+    }
+}
+
 /// Killing one rank mid-epoch ends the whole job with a message naming it;
 /// the last checkpoint (taken right after a mix) is intact. Resumed on as many
 /// ranks, the run ends on the model of a run never interrupted, byte for
@@ -373,26 +360,10 @@ fn a_rank_killed_mid_epoch_ends_the_job_and_the_run_resumes() {
     let mut job = spawn_two_ranks(&ds, &model, &ck, epochs);
     // Let it save a few checkpoints inside the second epoch or later (at every
     // mix, so about every 4,000 rows).
-    let start = Instant::now();
-    let ranks = loop {
-        assert!(
-            start.elapsed() < Duration::from_secs(120),
-            "no checkpoint came"
-        );
-        let ranks = ranks_of(&job);
-        if ck.exists() && ranks.len() == 2 {
-            // Past the first epoch, and part-way through one.
-            let p = checkpoint_meta(&ck)["position"].clone();
-            if p["epoch"].as_u64().unwrap() >= 1 && p["taken"].as_u64().unwrap() > 0 {
-                break ranks;
-            }
-        }
-        assert!(
-            job.try_wait().unwrap().is_none(),
-            "the job ended before the kill"
-        );
-        std::thread::sleep(Duration::from_millis(5));
-    };
+    let ranks = wait_for_checkpoint(&mut job, &ck, |p| {
+        // Past the first epoch, and part-way through one.
+        p["epoch"].as_u64().unwrap() >= 1 && p["taken"].as_u64().unwrap() > 0
+    });
     let (victim, _) = *ranks.iter().find(|(_, r)| *r == 1).unwrap();
     Command::new("kill")
         .args(["-KILL", &victim.to_string()])
@@ -442,8 +413,8 @@ fn a_rank_killed_mid_epoch_ends_the_job_and_the_run_resumes() {
     assert!(part_way, "the kill came at an epoch's end");
     assert!(o.stderr.contains("which starts over on 1"), "{}", o.stderr);
     assert_eq!(model_meta(&one)["training"]["ranks"].as_u64(), None);
-    let (_, acc_ref) = objective_and_accuracy(&reference, &ds, 1e-5);
-    let (_, acc_one) = objective_and_accuracy(&one, &ds, 1e-5);
+    let (_, acc_ref) = binary_objective_and_accuracy(&reference, &ds, 1e-5);
+    let (_, acc_one) = binary_objective_and_accuracy(&one, &ds, 1e-5);
     assert!(
         (acc_ref - acc_one).abs() <= 0.01,
         "resumed on one rank: accuracy {acc_one}, uninterrupted {acc_ref}"
@@ -459,19 +430,8 @@ fn a_stop_signal_saves_a_checkpoint_that_resumes() {
     let ds = spam_dataset(t.path(), "ds", 60_000);
     let model = t.path().join("m.tmm");
     let ck = t.path().join("m.tmc");
-    let job = spawn_two_ranks(&ds, &model, &ck, "8");
-    let start = Instant::now();
-    let ranks = loop {
-        assert!(
-            start.elapsed() < Duration::from_secs(120),
-            "no checkpoint came"
-        );
-        let ranks = ranks_of(&job);
-        if ck.exists() && ranks.len() == 2 {
-            break ranks;
-        }
-        std::thread::sleep(Duration::from_millis(5));
-    };
+    let mut job = spawn_two_ranks(&ds, &model, &ck, "8");
+    let ranks = wait_for_checkpoint(&mut job, &ck, |_| true);
     for (pid, _) in &ranks {
         Command::new("kill")
             .args(["-TERM", &pid.to_string()])

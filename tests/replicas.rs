@@ -9,7 +9,6 @@ mod common;
 use std::path::{Path, PathBuf};
 
 use common::*;
-use tamis::dataset::Split;
 
 /// `rows` invented messages ingested as a binary task (spam or not) with
 /// `2^log2` buckets.
@@ -101,29 +100,6 @@ fn one_replica_is_the_plain_path_and_the_settings_are_recorded() {
     assert_ne!(w(&one), w(&two));
 }
 
-/// λ/2·‖w‖² + mean hinge loss of a binary model on the training rows.
-fn primal_objective(model: &Path, ds: &Path, lambda: f64) -> f64 {
-    let bytes = std::fs::read(model).unwrap();
-    let w = f32_section(&bytes, MODEL_WEIGHTS);
-    let b = f32_section(&bytes, MODEL_BIASES)[0] as f64;
-    let positive = model_meta(model)["positive"].as_str().unwrap().to_string();
-    let rows = rows(ds, Some(Split::Train));
-    let mut loss = 0.0;
-    for r in &rows {
-        let m: f64 = r
-            .indices
-            .iter()
-            .zip(&r.values)
-            .map(|(&i, &v)| w[i as usize] as f64 * v as f64)
-            .sum::<f64>()
-            + b;
-        let y = if r.label == positive { 1.0 } else { -1.0 };
-        loss += (1.0 - y * m).max(0.0);
-    }
-    let reg: f64 = w.iter().map(|&x| x as f64 * x as f64).sum::<f64>() * lambda / 2.0;
-    reg + loss / rows.len() as f64
-}
-
 /// Two mixed replicas act like one copy with a batch twice as large (the mean
 /// of two copies that each took a step of B rows from the same weights is a
 /// step of 2B rows): their validation accuracy is within 0.5 points of one
@@ -146,7 +122,7 @@ fn mixed_replicas_act_like_one_copy_with_a_larger_batch() {
         let e = eval_json(&m, &[s(&ds)], &[]);
         (
             e["accuracy"].as_f64().unwrap(),
-            primal_objective(&m, &ds, lambda),
+            binary_objective_and_accuracy(&m, &ds, lambda).0,
         )
     };
     let (acc1, obj1) = run("one", &["--replicas", "1"]);

@@ -371,24 +371,40 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
         Outcome::Stopped {
             checkpoint,
             position,
-        } => {
-            let abs = std::path::absolute(&checkpoint).unwrap_or(checkpoint);
-            eprintln!(
-                "interrupted: saved the training state at epoch {}, step {} to {}",
-                position.epoch + 1,
-                position.step,
-                abs.display()
-            );
+        } => Ok(interrupted(checkpoint, position, None)),
+    }
+}
+
+/// Say where an interrupted run saved its state and how to resume it (under
+/// `mpirun -n RANKS` for a distributed run); the exit status to return.
+fn interrupted(
+    checkpoint: PathBuf,
+    position: tamis::checkpoint::Position,
+    ranks: Option<usize>,
+) -> ExitCode {
+    let abs = std::path::absolute(&checkpoint).unwrap_or(checkpoint);
+    eprintln!(
+        "interrupted: saved the training state at epoch {}, step {} to {}",
+        position.epoch + 1,
+        position.step,
+        abs.display()
+    );
+    let me = std::env::args().next().unwrap_or_else(|| "tamis".into());
+    let me = shell_quote(Path::new(&me));
+    match ranks {
+        None => {
             eprintln!("resume with:");
-            let me = std::env::args().next().unwrap_or_else(|| "tamis".into());
+            eprintln!("  {me} train --resume {}", shell_quote(&abs));
+        }
+        Some(n) => {
+            eprintln!("resume with (or the same under your scheduler):");
             eprintln!(
-                "  {} train --resume {}",
-                shell_quote(Path::new(&me)),
+                "  mpirun -n {n} {me} train --resume {} --distributed",
                 shell_quote(&abs)
             );
-            Ok(ExitCode::from(INTERRUPTED))
         }
     }
+    ExitCode::from(INTERRUPTED)
 }
 
 /// `tamis train --distributed`: one rank of an MPI job.
@@ -452,23 +468,7 @@ mod distributed {
                     Outcome::Stopped {
                         checkpoint,
                         position,
-                    } => {
-                        let abs = std::path::absolute(&checkpoint).unwrap_or(checkpoint);
-                        eprintln!(
-                            "interrupted: saved the training state at epoch {}, step {} to {}",
-                            position.epoch + 1,
-                            position.step,
-                            abs.display()
-                        );
-                        eprintln!("resume with (or the same under your scheduler):");
-                        let me = std::env::args().next().unwrap_or_else(|| "tamis".into());
-                        eprintln!(
-                            "  mpirun -n {ranks} {} train --resume {} --distributed",
-                            shell_quote(Path::new(&me)),
-                            shell_quote(&abs)
-                        );
-                        Ok(ExitCode::from(INTERRUPTED))
-                    }
+                    } => Ok(interrupted(checkpoint, position, Some(ranks))),
                 }
             }
         }

@@ -767,3 +767,38 @@ pub fn spam_model(work: &Path, name: &str, loss: &str) -> (PathBuf, PathBuf) {
     train(&dir, &model, &["--epochs", "3", "--loss", loss, "-q"]).ok();
     (dir, model)
 }
+
+/// λ/2·‖w‖² + mean hinge loss of a binary model (file `model`) on the training
+/// rows of `ds`, and its accuracy on the validation rows.
+pub fn binary_objective_and_accuracy(model: &Path, ds: &Path, lambda: f64) -> (f64, f64) {
+    let bytes = std::fs::read(model).unwrap();
+    let w = f32_section(&bytes, MODEL_WEIGHTS);
+    let b = f32_section(&bytes, MODEL_BIASES)[0] as f64;
+    let positive = model_meta(model)["positive"].as_str().unwrap().to_string();
+    let margin = |r: &Row| {
+        r.indices
+            .iter()
+            .zip(&r.values)
+            .map(|(&i, &v)| w[i as usize] as f64 * v as f64)
+            .sum::<f64>()
+            + b
+    };
+    let train = rows(ds, Some(tamis::dataset::Split::Train));
+    let loss: f64 = train
+        .iter()
+        .map(|r| {
+            let y = if r.label == positive { 1.0 } else { -1.0 };
+            (1.0 - y * margin(r)).max(0.0)
+        })
+        .sum();
+    let reg = w.iter().map(|&x| x as f64 * x as f64).sum::<f64>() * lambda / 2.0;
+    let valid = rows(ds, Some(tamis::dataset::Split::Validation));
+    let right = valid
+        .iter()
+        .filter(|r| (margin(r) > 0.0) == (r.label == positive))
+        .count();
+    (
+        reg + loss / train.len() as f64,
+        right as f64 / valid.len().max(1) as f64,
+    )
+}
