@@ -879,9 +879,9 @@ impl Run<'_> {
         // Whether the run resumes an epoch part-way (on any rank): that epoch
         // keeps the shards it started with.
         let mut resumed_part_way = false;
-        // Where to begin, and the list of training shards of the first epoch.
         // The training shards (of every part) that the checkpoint's epoch uses.
         let mut first_files: Vec<&ShardEntry> = manifest_train.clone();
+        // Where to begin, and the list of training shards of the first epoch.
         let (mut first, mut first_sums, mut early, mut epochs, first_list) = match resume_ck {
             Some(ck) => {
                 let meta = ck.meta;
@@ -998,6 +998,14 @@ impl Run<'_> {
         let stop_requested = || opts.stop.as_ref().is_some_and(|f| f.load(Ordering::SeqCst));
         let mut last_ck = Instant::now();
         let mut last_cost = None;
+        if ranks > 1 && !by_part && manifest_train.len() < 2 * ranks {
+            (self.log)(&format!(
+                "note: {} training shard(s) for {ranks} ranks: the shares are uneven and a rank \
+                 without rows only holds; ingest with a smaller --shard-rows for several shards \
+                 per rank",
+                manifest_train.len()
+            ));
+        }
         (self.log)(EPOCH_HEADER);
         let start_epoch = first.map_or(0, |p| p.epoch);
         let mut done_early = s.patience.is_some_and(|p| early.since_best >= p);
