@@ -117,13 +117,15 @@ pub struct Args {
     /// (parameter mixing). They run on separate cores, so R up to the number of
     /// cores trains up to R times faster, at a cost in accuracy per epoch like
     /// that of a larger batch; 1 trains a single copy [default: 2 for a binary
-    /// task of at least 1,048,576 training rows, else 1].
+    /// task of at least 1,048,576 training rows (per rank with --distributed),
+    /// else 1].
     #[arg(long, value_name = "R")]
     pub replicas: Option<usize>,
 
-    /// Training rows (all replicas together) between two mixes of the
-    /// replicas [default: about 16 nonzeros per feature per replica, e.g.
-    /// 1.4 M rows for messages of 24 nonzeros at 2^20 features].
+    /// Training rows (all replicas together, of all ranks with --distributed)
+    /// between two mixes of the replicas [default: about 16 nonzeros per
+    /// feature per replica, e.g. 1.4 M rows for messages of 24 nonzeros at 2^20
+    /// features; with --distributed on several ranks, epoch ends only].
     #[arg(long, value_name = "ROWS")]
     pub sync_every: Option<u64>,
 
