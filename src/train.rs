@@ -483,8 +483,10 @@ pub fn resume(opts: &TrainOptions, resume: Resume, log: Log) -> Result<Outcome> 
 /// [`resume`] as one process of a distributed run (every process passes the
 /// same checkpoint, which rank 0 read: see [`Checkpoint::from_bytes`]). With as
 /// many processes as the checkpoint's run had, the final model is the same as
-/// an uninterrupted run's; with another number, the epoch in progress starts
-/// over on the new shares (the model and step counter continue).
+/// an uninterrupted run's, unless the checkpoint was saved on a stop request
+/// (the ranks then mixed once more than an uninterrupted run does); with
+/// another number, the epoch in progress starts over on the new shares (the
+/// model and step counter continue).
 pub fn resume_in(
     opts: &TrainOptions,
     resume: Resume,
@@ -564,65 +566,75 @@ fn begin(
     let _locks = locks;
 
     let m = distributed::agree(comm, Manifest::load(&opts.dir))?;
-    let positive = trainable_task(&m, &opts.dir)?;
+    // Every rank must see the same dataset before it checks anything in it.
+    distributed::check_same_dataset(comm, m.fingerprint())?;
+    let positive = distributed::agree(comm, trainable_task(&m, &opts.dir))?;
     let ranks = comm.size() as u64;
-    let settings = match &resume {
-        Some(r) => {
-            check_dataset(
+    let settings = distributed::agree(
+        comm,
+        match &resume {
+            Some(r) => check_dataset(
                 &r.checkpoint.meta,
                 &r.path,
                 &m,
                 &opts.dir,
                 positive,
                 r.allow_appended,
-            )?;
-            let mut s = r.checkpoint.meta.settings.clone();
-            s.ranks = ranks as u32;
-            s
-        }
-        None => {
-            let (class_weights, class_weight_rule) =
-                class_weights_of(&m, positive, &opts.class_weight)?;
-            // Each rank's replicas, by its share of the rows.
-            let replicas = opts
-                .replicas
-                .unwrap_or_else(|| auto_replicas(positive.is_some(), m.train_rows() / ranks));
-            TrainSettings {
-                solver: opts.solver.clone(),
-                epochs: opts.epochs,
-                seed: opts.seed,
-                class_weights,
-                class_weight_rule,
-                idf: opts.idf,
-                patience: opts.patience,
-                init_from: None,
-                replicas: replicas as u32,
-                sync_every: match opts.sync_every {
-                    _ if replicas <= 1 && ranks == 1 => 0,
-                    Some(rows) => rows,
-                    // Ranks mix at epoch ends unless told otherwise.
-                    None if ranks > 1 => 0,
-                    None => default_sync_every(
-                        m.features.buckets(),
-                        m.nnz() as f64 / (m.train_rows() + m.validation_rows()).max(1) as f64,
-                        replicas,
-                        opts.solver.batch,
-                    ),
+            )
+            .map(|()| {
+                let mut s = r.checkpoint.meta.settings.clone();
+                s.ranks = ranks as u32;
+                s
+            }),
+            None => class_weights_of(&m, positive, &opts.class_weight).map(
+                |(class_weights, class_weight_rule)| {
+                    // Each rank's replicas, by its share of the rows.
+                    let replicas = opts.replicas.unwrap_or_else(|| {
+                        auto_replicas(positive.is_some(), m.train_rows() / ranks)
+                    });
+                    TrainSettings {
+                        solver: opts.solver.clone(),
+                        epochs: opts.epochs,
+                        seed: opts.seed,
+                        class_weights,
+                        class_weight_rule,
+                        idf: opts.idf,
+                        patience: opts.patience,
+                        init_from: None,
+                        replicas: replicas as u32,
+                        sync_every: match opts.sync_every {
+                            _ if replicas <= 1 && ranks == 1 => 0,
+                            Some(rows) => rows,
+                            // Ranks mix at epoch ends unless told otherwise.
+                            None if ranks > 1 => 0,
+                            None => default_sync_every(
+                                m.features.buckets(),
+                                m.nnz() as f64
+                                    / (m.train_rows() + m.validation_rows()).max(1) as f64,
+                                replicas,
+                                opts.solver.batch,
+                            ),
+                        },
+                        ranks: ranks as u32,
+                    }
                 },
-                ranks: ranks as u32,
-            }
-        }
-    };
-    distributed::check_same_run(
-        comm,
-        m.fingerprint(),
-        xxhash_rust::xxh3::xxh3_64(&serde_json::to_vec(&settings).expect("settings serialise")),
+            ),
+        },
     )?;
-    let pool = rayon::ThreadPoolBuilder::new()
-        .num_threads(opts.threads.max(1))
-        .thread_name(|i| format!("tamis-train-{i}"))
-        .build()
-        .map_err(|e| Error::Invalid(format!("cannot start threads: {e}")))?;
+    // The settings, and the options that decide which collective operations a
+    // rank makes (a warm start, periodic checkpoints), must agree too.
+    let mut what = serde_json::to_vec(&settings).expect("settings serialise");
+    what.push(opts.init_from.is_some() as u8);
+    what.push(opts.checkpoint.is_some() as u8);
+    distributed::check_same_settings(comm, xxhash_rust::xxh3::xxh3_64(&what))?;
+    let pool = distributed::agree(
+        comm,
+        rayon::ThreadPoolBuilder::new()
+            .num_threads(opts.threads.max(1))
+            .thread_name(|i| format!("tamis-train-{i}"))
+            .build()
+            .map_err(|e| Error::Invalid(format!("cannot start threads: {e}"))),
+    )?;
     let run = Run {
         opts,
         m: &m,
@@ -906,7 +918,16 @@ impl Run<'_> {
                         .any(|p| (p.group, p.taken) != (0, 0));
                 resumed_part_way = part_way;
                 let mut restart = String::new();
-                if was == ranks && ranks > 1 {
+                if meta.epoch_order != order::ORDER_VERSION && part_way {
+                    // Positions of another order's rules: the epoch starts over.
+                    position.group = 0;
+                    position.taken = 0;
+                    sums = EpochSums::default();
+                    resumed_part_way = false;
+                    restart = "; the checkpoint was written by a tamis that drew epochs in \
+                               another order, so the epoch in progress starts over"
+                        .into();
+                } else if was == ranks && ranks > 1 {
                     // Each rank continues its own share, and its own sums.
                     match meta.rank_positions.get(rank) {
                         Some(p) if meta.rank_positions.len() == ranks => {
@@ -1042,7 +1063,9 @@ impl Run<'_> {
                     .collect()
             };
             let mut sums = std::mem::take(&mut first_sums);
-            let (rows_before, nnz_before) = (sums.rows, sums.nnz);
+            // What every rank had seen of a resumed epoch (for its rates).
+            let before = global_sums(comm, sums);
+            let (rows_before, nnz_before) = (before.rows, before.nnz);
             let t0 = Instant::now();
             let average = epoch >= s.solver.average_from;
             let bar = progress(
@@ -1347,6 +1370,7 @@ impl Run<'_> {
             early_stop: snap.early,
             epochs: snap.epochs.to_vec(),
             rank_positions: snap.ranks.clone(),
+            epoch_order: order::ORDER_VERSION,
         };
         // Rank 0 writes for all: at a checkpoint every rank holds the same models.
         if self.comm.rank() != 0 {

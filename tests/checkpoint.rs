@@ -825,3 +825,46 @@ fn a_killed_ingest_leaves_the_previous_dataset_and_reruns_cleanly() {
 fn help_explains_every_option() {
     assert_help_explains_everything(&["train"]);
 }
+
+/// A checkpoint written part-way through an epoch by a tamis whose epoch order
+/// had other rules (no `epoch_order` in its metadata): its position means
+/// nothing now, so the epoch starts over, says so, and the run finishes with
+/// the steps of a whole epoch for the one restarted.
+#[test]
+fn a_checkpoint_of_another_epoch_order_restarts_its_epoch() {
+    let t = tmp();
+    let ds = dataset(t.path(), "ds", 3000, &[]);
+    let model = t.path().join("m.tmm");
+    let ck = t.path().join("m.tmc");
+    let mut child = spawn_checkpointing(&ds, &model, &ck, &["--epochs", "2"]);
+    signal(&child, "-INT");
+    assert_eq!(child.wait().unwrap().code(), Some(130));
+    let p = position(&ck);
+    assert!(p["epoch"] == 0 && p["taken"] != 0, "not part-way: {p}");
+    // Rewrite it as an older build would have: the same state, no order version.
+    let mut old = tamis::checkpoint::Checkpoint::load(&ck).unwrap();
+    old.meta.epoch_order = 0;
+    let models: Vec<&tamis::solver::Linear> = old.models.iter().collect();
+    tamis::checkpoint::Checkpoint::write(&ck, &old.meta, &models, old.idf.as_deref()).unwrap();
+    assert_eq!(
+        tamis::checkpoint::Checkpoint::load(&ck)
+            .unwrap()
+            .meta
+            .epoch_order,
+        0
+    );
+    let o = tamis(["train", "--resume", s(&ck)]);
+    o.ok()
+        .stderr_has("drew epochs in another order, so the epoch in progress starts over");
+    // Steps: those taken before the stop, then two whole epochs.
+    let m = manifest(&ds);
+    let train: Vec<_> = m.shards_of(tamis::dataset::Split::Train).collect();
+    let steps = |epoch: u32| -> u64 {
+        tamis::solver::order::groups(train.len(), 1, epoch)
+            .iter()
+            .map(|g| g.iter().map(|&i| train[i].rows).sum::<u64>().div_ceil(64))
+            .sum()
+    };
+    let want = p["step"].as_u64().unwrap() + steps(0) + steps(1);
+    assert_eq!(model_meta(&model)["steps"].as_u64().unwrap(), want);
+}

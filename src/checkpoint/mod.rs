@@ -150,6 +150,11 @@ pub struct CheckpointMeta {
     /// 0's. A run resumed with as many ranks continues each from here.
     #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub rank_positions: Vec<RankPosition>,
+    /// The rules of the epoch order the positions refer to
+    /// ([`crate::solver::order::ORDER_VERSION`]; 0, absent, in checkpoints
+    /// written before the rules had a version).
+    #[serde(default)]
+    pub epoch_order: u32,
 }
 
 /// Where one rank of a distributed run stands in its share of an epoch.
@@ -445,6 +450,7 @@ mod tests {
                         sums: EpochSums::default(),
                     },
                 ],
+                epoch_order: crate::solver::order::ORDER_VERSION,
             },
             models,
             idf: Some((0..d).map(|i| 1.0 + i as f32 / 7.0).collect()),

@@ -322,10 +322,24 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
         #[cfg(feature = "mpi")]
         return distributed::run(a);
         #[cfg(not(feature = "mpi"))]
-        bail!(
-            "--distributed needs a tamis built with MPI: cargo build --release --features mpi \
-             (with the MPI development files and libclang installed; see the README)"
-        );
+        {
+            // Under mpirun or srun every rank fails alike: rank 0 alone says why.
+            let rank = [
+                "OMPI_COMM_WORLD_RANK",
+                "PMI_RANK",
+                "PMIX_RANK",
+                "SLURM_PROCID",
+            ]
+            .iter()
+            .find_map(|v| std::env::var(v).ok());
+            if rank.is_some_and(|r| r != "0") {
+                return Ok(ExitCode::from(1));
+            }
+            bail!(
+                "--distributed needs a tamis built with MPI: cargo build --release --features mpi \
+                 (with the MPI development files and libclang installed; see the README)"
+            );
+        }
     }
     let log = super::stderr_log(a.quiet);
     let (mut opts, resume) = match &a.resume {

@@ -226,13 +226,14 @@ fn new_manifest(opts: &IngestOptions) -> Result<Manifest> {
             "--parts must be in 1..=1024, got {parts}"
         )));
     }
-    // Every part gets as many training writers (rounded up).
-    let writers = c.scatter.unwrap_or(DEFAULT_SCATTER).max(1).div_ceil(parts) * parts;
-    if shard_rows == 0 || !(1..=1024).contains(&writers) || c.scatter == Some(0) {
+    let scatter = c.scatter.unwrap_or(DEFAULT_SCATTER);
+    if shard_rows == 0 || !(1..=1024).contains(&scatter) {
         return Err(Error::Invalid(
-            "--shard-rows must be positive and --scatter in 1..=1024 (rounded up to a multiple of --parts)".into(),
+            "--shard-rows must be positive and --scatter in 1..=1024".into(),
         ));
     }
+    // Every part gets as many training writers (rounded up): at most 1024 × 1024.
+    let writers = scatter.div_ceil(parts) * parts;
     Ok(Manifest {
         checksum: String::new(),
         format: FORMAT_NAME.into(),
@@ -312,11 +313,12 @@ fn check_append(m: &Manifest, opts: &IngestOptions, path: &Path) -> Result<()> {
     agree(path, "--parts", c.parts.as_ref(), &m.scatter.parts)?;
     if let Some(w) = c.scatter {
         // The stored count was rounded up to a multiple of the parts.
+        let parts = u64::from(m.scatter.parts.max(1));
         agree(
             path,
             "--scatter",
-            Some(&(w.max(1).div_ceil(m.scatter.parts) * m.scatter.parts)),
-            &m.scatter.writers,
+            Some(&(u64::from(w).div_ceil(parts) * parts)),
+            &u64::from(m.scatter.writers),
         )?;
     }
     agree(path, "text fields", Some(&opts.spec.text), &f.text_fields)?;

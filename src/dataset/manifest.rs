@@ -275,6 +275,19 @@ impl Manifest {
             });
         }
         m.features.validate().map_err(|e| corrupt(e.to_string()))?;
+        let sc = &m.scatter;
+        if sc.parts == 0 || sc.writers == 0 || sc.writers % sc.parts != 0 || sc.shard_rows == 0 {
+            return Err(corrupt(format!(
+                "scatter rule of {} writer(s) in {} part(s) with {} rows per shard is not one ingest writes",
+                sc.writers, sc.parts, sc.shard_rows
+            )));
+        }
+        if let Some(s) = m.shards.iter().find(|s| s.part >= sc.parts) {
+            return Err(corrupt(format!(
+                "shard {} is in part {} of {}",
+                s.file, s.part, sc.parts
+            )));
+        }
         Ok(m)
     }
 
@@ -393,6 +406,25 @@ pub(crate) mod tests {
             batches: vec![],
             next_shard: 1,
         }
+    }
+
+    /// A manifest whose checksum is right but whose scatter rule or parts
+    /// could not come from ingest is refused, not used (it would divide by
+    /// zero or index out of range later).
+    #[test]
+    fn impossible_scatter_rules_are_refused() {
+        let p = Path::new("manifest.json");
+        for (writers, parts, part) in [(0, 1, 0), (4, 0, 0), (5, 2, 0), (4, 2, 2)] {
+            let mut m = sample();
+            m.scatter.writers = writers;
+            m.scatter.parts = parts;
+            m.shards[0].part = part;
+            let err = Manifest::from_bytes(&m.to_bytes(), p)
+                .unwrap_err()
+                .to_string();
+            assert!(err.contains("damaged file"), "{err}");
+        }
+        assert!(Manifest::from_bytes(&sample().to_bytes(), p).is_ok());
     }
 
     #[test]

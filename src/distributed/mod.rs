@@ -91,40 +91,51 @@ pub fn agree<T>(comm: &dyn Collective, local: Result<T>) -> Result<T> {
     }
 }
 
+/// The ranks whose `value` differs from rank 0's, as `rank R has X`, and rank
+/// 0's value.
+fn differing(comm: &dyn Collective, value: u64) -> (u64, Vec<String>) {
+    let all = comm.gather_u64(&[value]);
+    let differ = all
+        .iter()
+        .enumerate()
+        .filter(|&(_, &v)| v != all[0])
+        .map(|(r, v)| format!("rank {r} has {v:016x}"))
+        .collect();
+    (all[0], differ)
+}
+
 /// Check that every rank opened the same dataset (the manifest's
-/// `fingerprint`) and was started with the same training settings (a hash of
-/// them, `settings`); the message names the ranks that differ.
-pub fn check_same_run(comm: &dyn Collective, fingerprint: u64, settings: u64) -> Result<()> {
+/// `fingerprint`); the message names the ranks that differ.
+pub fn check_same_dataset(comm: &dyn Collective, fingerprint: u64) -> Result<()> {
     if comm.size() == 1 {
         return Ok(());
     }
-    let all = comm.gather_u64(&[fingerprint, settings]);
-    let differ = |k: usize| -> Vec<String> {
-        all.chunks_exact(2)
-            .enumerate()
-            .filter(|(_, c)| c[k] != all[k])
-            .map(|(r, c)| format!("rank {r} has {:016x}", c[k]))
-            .collect()
-    };
-    let data = differ(0);
-    if !data.is_empty() {
-        return Err(Error::Invalid(format!(
-            "the ranks do not see the same dataset: rank 0 has fingerprint {:016x}, {}; every \
-             rank must open the same dataset (one shared folder, or identical copies of it)",
-            all[0],
-            data.join(", ")
-        )));
+    let (first, differ) = differing(comm, fingerprint);
+    if differ.is_empty() {
+        return Ok(());
     }
-    let settings = differ(1);
-    if !settings.is_empty() {
-        return Err(Error::Invalid(format!(
-            "the ranks were started with different training settings (rank 0 has {:016x}, {}): \
-             start every rank with the same options",
-            all[1],
-            settings.join(", ")
-        )));
+    Err(Error::Invalid(format!(
+        "the ranks do not see the same dataset: rank 0 has fingerprint {first:016x}, {}; every \
+         rank must open the same dataset (one shared folder, or identical copies of it)",
+        differ.join(", ")
+    )))
+}
+
+/// Check that every rank was started with the same training settings (a hash
+/// of them); the message names the ranks that differ.
+pub fn check_same_settings(comm: &dyn Collective, settings: u64) -> Result<()> {
+    if comm.size() == 1 {
+        return Ok(());
     }
-    Ok(())
+    let (first, differ) = differing(comm, settings);
+    if differ.is_empty() {
+        return Ok(());
+    }
+    Err(Error::Invalid(format!(
+        "the ranks were started with different training settings (rank 0 has {first:016x}, {}): \
+         start every rank with the same options",
+        differ.join(", ")
+    )))
 }
 
 /// The training shards (indices into `lens`) of `rank` among `ranks` in
@@ -187,7 +198,7 @@ pub fn mix_across(replicas: &mut [Trainer], comm: &dyn Collective) {
     for (k, m) in first.models.iter_mut().enumerate() {
         mix_model_across(m, comm, p);
         for r in rest.iter_mut() {
-            r.models[k].clone_from(m);
+            r.models[k].assign(m);
         }
     }
 }
@@ -287,6 +298,7 @@ mod tests {
         };
         assert_eq!(exchange(&s, c), c);
         assert!(agree(&s, Ok(1)).is_ok());
-        assert!(check_same_run(&s, 5, 6).is_ok());
+        assert!(check_same_dataset(&s, 5).is_ok());
+        assert!(check_same_settings(&s, 6).is_ok());
     }
 }

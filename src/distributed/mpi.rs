@@ -5,8 +5,10 @@
 //! calls it. Training runs on a thread pool, so [`serve`] runs the work on a
 //! thread of its own and hands it a [`Collective`] that forwards each operation
 //! to the starting thread over a channel; that thread makes the MPI call and
-//! sends the result back. An operation moves at most 1 MiB at a time (see
-//! [`super::PIECE`]), so the copies cost little next to the network.
+//! sends the result back. The sums of a mix move 1 MiB at a time (see
+//! [`super::PIECE`]), so the copies cost little next to the network; a
+//! broadcast (a checkpoint, on resume) goes in pieces of [`BROADCAST_PIECE`],
+//! below MPI's count limit of 2^31 − 1 elements.
 
 use std::sync::atomic::{AtomicU64, Ordering};
 use std::sync::mpsc::{channel, Receiver, Sender};
@@ -17,6 +19,9 @@ use mpi::topology::SimpleCommunicator;
 use mpi::traits::*;
 
 use super::Collective;
+
+/// Bytes per call of a broadcast.
+pub const BROADCAST_PIECE: usize = 64 << 20;
 
 /// The processes of an MPI job (`MPI_COMM_WORLD`), used from the thread that
 /// started MPI.
@@ -73,7 +78,9 @@ impl World {
                 let mut len = [buf.len() as u64];
                 root.broadcast_into(&mut len[..]);
                 buf.resize(len[0] as usize, 0);
-                root.broadcast_into(&mut buf[..]);
+                for piece in buf.chunks_mut(BROADCAST_PIECE) {
+                    root.broadcast_into(piece);
+                }
                 Reply::Bytes(buf)
             }
         }
@@ -156,7 +163,9 @@ impl Collective for Proxy {
 
 /// Run `work` on a thread of its own with a [`Collective`] over `world`, while
 /// this thread (the one that started MPI) makes the MPI calls it asks for.
-/// Returns what `work` returns (a panic in it is raised again here).
+/// Returns what `work` returns (a panic in it, or in an MPI call, is raised
+/// again here: a panic here first closes the channels, so the work does not
+/// wait for an answer that never comes).
 pub fn serve<R: Send>(world: &World, work: impl FnOnce(&dyn Collective) -> R + Send) -> R {
     let (req_tx, req_rx) = channel::<Request>();
     let (rep_tx, rep_rx) = channel::<Reply>();
@@ -176,13 +185,19 @@ pub fn serve<R: Send>(world: &World, work: impl FnOnce(&dyn Collective) -> R + S
                 // the loop below ends.
             })
             .expect("cannot start the training thread");
-        while let Ok(request) = req_rx.recv() {
-            if rep_tx.send(world.answer(request)).is_err() {
-                break;
+        // The channel ends move into the serving closure, so a panic drops
+        // them and the worker's wait ends.
+        let served = std::panic::catch_unwind(std::panic::AssertUnwindSafe(move || {
+            while let Ok(request) = req_rx.recv() {
+                if rep_tx.send(world.answer(request)).is_err() {
+                    break;
+                }
             }
+        }));
+        let worked = worker.join();
+        if let Err(panic) = served {
+            std::panic::resume_unwind(panic);
         }
-        worker
-            .join()
-            .unwrap_or_else(|panic| std::panic::resume_unwind(panic))
+        worked.unwrap_or_else(|panic| std::panic::resume_unwind(panic))
     })
 }

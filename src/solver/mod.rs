@@ -334,6 +334,19 @@ impl Linear {
         (&mut self.v, &mut self.u, scalars)
     }
 
+    /// Make this model a copy of `other` (of the same dimension), in place:
+    /// no new memory, unlike `clone`.
+    pub(crate) fn assign(&mut self, other: &Linear) {
+        self.v.copy_from_slice(&other.v);
+        self.u.copy_from_slice(&other.u);
+        self.s = other.s;
+        self.b = other.b;
+        self.vnorm2 = other.vnorm2;
+        self.big_b = other.big_b;
+        self.bias_sum = other.bias_sum;
+        self.averaged = other.averaged;
+    }
+
     /// Set `[s, b, ‖v‖², B, Σb]` (after [`Linear::fold_scale`]).
     pub(crate) fn set_scalars(&mut self, [s, b, vnorm2, big_b, bias_sum]: [f64; 5]) {
         self.s = s;

@@ -1,16 +1,19 @@
 //! The order in which an epoch visits rows.
 //!
 //! Shards are visited in a seeded random order, in groups of up to
-//! [`GROUP_SHARDS`] shards. Inside a group, each shard's rows follow a seeded
-//! random permutation and the next row is drawn from a shard chosen at random
-//! with probability proportional to its remaining rows, so the rows of the group
-//! are interleaved. With the scatter of `ingest`, this gives a near-random order
-//! even for input sorted by time or label, while only a group's permutations are
-//! held in memory (4 bytes per row of the group's shards).
+//! [`GROUP_SHARDS`] shards. A group's shards are cut into blocks of
+//! [`BLOCK_ROWS`] consecutive rows, the blocks are shuffled and taken
+//! [`WINDOW_BLOCKS`] at a time into a window, and a window's rows are drawn by
+//! [`LANES`] lanes reading shuffled runs of [`RUN_ROWS`] consecutive rows (see
+//! [`Interleave`]). With the scatter of `ingest`, this gives a near-random order
+//! even for input sorted by time or label, while memory holds one entry per
+//! block of the group and a few words per row of the current window.
 //!
-//! Everything is drawn from ChaCha8 generators seeded from `(seed, epoch)` and
-//! `(seed, epoch, group)`, so a position inside an epoch can be recreated from
-//! `(epoch, group, rows taken)`.
+//! Everything is drawn from ChaCha8 generators seeded from `(seed, epoch)`,
+//! `(seed, epoch, group)` and `(seed, epoch, group, window)`, so a position
+//! inside an epoch can be recreated from `(epoch, group, rows taken)`. A
+//! checkpoint records [`ORDER_VERSION`]: a position means nothing under
+//! another version of these rules.
 
 use rand::seq::SliceRandom;
 use rand::SeedableRng;
@@ -72,12 +75,18 @@ pub const BLOCK_ROWS: usize = 512;
 /// Blocks whose rows are mixed at once: a window of the epoch's order holds the
 /// rows of this many blocks, drawn at random from all the shards of the group.
 pub const WINDOW_BLOCKS: usize = 128;
+/// Version of the rules above, stored in checkpoints: 1 is the lanes inside a
+/// window; checkpoints without it were written under a uniform permutation of
+/// each window.
+pub const ORDER_VERSION: u32 = 1;
+
 /// Consecutive rows of a block that one lane of a window reads in turn: about
 /// 3 KiB of a shard for short messages, so the rows share cache lines and pages.
 pub const RUN_ROWS: usize = 16;
 /// Lanes of a window: each reads one run at a time, and the window's order takes
-/// one row from each lane in turn, so any [`LANES`] consecutive rows come from
-/// that many places of the window.
+/// one row from each lane in turn, so while every lane has a run (all but the
+/// last few runs of a window, and a window of at least this many runs), any
+/// [`LANES`] consecutive rows come from that many places of the window.
 pub const LANES: usize = 64;
 
 /// Draws the rows of one group in a random order that stays local.
@@ -88,7 +97,8 @@ pub const LANES: usize = 64;
 /// rows, the runs are shuffled, and [`LANES`] lanes read them: each lane takes
 /// the next run of the shuffled list when its own is done, and the order takes
 /// one row from each lane in turn. So a batch of 64 rows comes from 64 random
-/// places of the window, while the rows that follow in each lane sit next to
+/// places of the window (except near a window's end, where lanes run dry),
+/// while the rows that follow in each lane sit next to
 /// the one just read: they share its cache lines and pages, and a lane's data
 /// stays in the caches while the window moves on. A window touches a bounded
 /// part of the data (about 13 MB for short messages); a fully random order over
