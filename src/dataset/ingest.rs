@@ -232,8 +232,8 @@ fn new_manifest(opts: &IngestOptions) -> Result<Manifest> {
             "--shard-rows must be positive and --scatter in 1..=1024".into(),
         ));
     }
-    // Every part gets as many training writers (rounded up): at most 1024 × 1024.
-    let writers = scatter.div_ceil(parts) * parts;
+    // At most 1024 × 1024.
+    let writers = writers_for(scatter, parts) as u32;
     Ok(Manifest {
         checksum: String::new(),
         format: FORMAT_NAME.into(),
@@ -259,6 +259,13 @@ fn new_manifest(opts: &IngestOptions) -> Result<Manifest> {
         batches: vec![],
         next_shard: 0,
     })
+}
+
+/// Training writers for `--scatter W` over `parts` parts: W rounded up to a
+/// multiple of the parts, so that every part gets as many.
+fn writers_for(scatter: u32, parts: u32) -> u64 {
+    let parts = u64::from(parts.max(1));
+    u64::from(scatter).div_ceil(parts) * parts
 }
 
 /// Check that an append's choices and input fields agree with the dataset.
@@ -313,11 +320,10 @@ fn check_append(m: &Manifest, opts: &IngestOptions, path: &Path) -> Result<()> {
     agree(path, "--parts", c.parts.as_ref(), &m.scatter.parts)?;
     if let Some(w) = c.scatter {
         // The stored count was rounded up to a multiple of the parts.
-        let parts = u64::from(m.scatter.parts.max(1));
         agree(
             path,
             "--scatter",
-            Some(&(u64::from(w).div_ceil(parts) * parts)),
+            Some(&writers_for(w, m.scatter.parts)),
             &u64::from(m.scatter.writers),
         )?;
     }

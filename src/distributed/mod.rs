@@ -91,51 +91,50 @@ pub fn agree<T>(comm: &dyn Collective, local: Result<T>) -> Result<T> {
     }
 }
 
-/// The ranks whose `value` differs from rank 0's, as `rank R has X`, and rank
-/// 0's value.
-fn differing(comm: &dyn Collective, value: u64) -> (u64, Vec<String>) {
+/// Gather `value` from every rank; if any differs from rank 0's, the error
+/// `message(rank 0's value, "rank R has X, ...")` on every rank.
+fn require_same(
+    comm: &dyn Collective,
+    value: u64,
+    message: impl FnOnce(u64, String) -> String,
+) -> Result<()> {
+    if comm.size() == 1 {
+        return Ok(());
+    }
     let all = comm.gather_u64(&[value]);
-    let differ = all
+    let differ: Vec<String> = all
         .iter()
         .enumerate()
         .filter(|&(_, &v)| v != all[0])
         .map(|(r, v)| format!("rank {r} has {v:016x}"))
         .collect();
-    (all[0], differ)
+    if differ.is_empty() {
+        return Ok(());
+    }
+    Err(Error::Invalid(message(all[0], differ.join(", "))))
 }
 
 /// Check that every rank opened the same dataset (the manifest's
 /// `fingerprint`); the message names the ranks that differ.
 pub fn check_same_dataset(comm: &dyn Collective, fingerprint: u64) -> Result<()> {
-    if comm.size() == 1 {
-        return Ok(());
-    }
-    let (first, differ) = differing(comm, fingerprint);
-    if differ.is_empty() {
-        return Ok(());
-    }
-    Err(Error::Invalid(format!(
-        "the ranks do not see the same dataset: rank 0 has fingerprint {first:016x}, {}; every \
-         rank must open the same dataset (one shared folder, or identical copies of it)",
-        differ.join(", ")
-    )))
+    require_same(comm, fingerprint, |first, differ| {
+        format!(
+            "the ranks do not see the same dataset: rank 0 has fingerprint {first:016x}, \
+             {differ}; every rank must open the same dataset (one shared folder, or identical \
+             copies of it)"
+        )
+    })
 }
 
 /// Check that every rank was started with the same training settings (a hash
 /// of them); the message names the ranks that differ.
 pub fn check_same_settings(comm: &dyn Collective, settings: u64) -> Result<()> {
-    if comm.size() == 1 {
-        return Ok(());
-    }
-    let (first, differ) = differing(comm, settings);
-    if differ.is_empty() {
-        return Ok(());
-    }
-    Err(Error::Invalid(format!(
-        "the ranks were started with different training settings (rank 0 has {first:016x}, {}): \
-         start every rank with the same options",
-        differ.join(", ")
-    )))
+    require_same(comm, settings, |first, differ| {
+        format!(
+            "the ranks were started with different training settings (rank 0 has \
+             {first:016x}, {differ}): start every rank with the same options"
+        )
+    })
 }
 
 /// The training shards (indices into `lens`) of `rank` among `ranks` in
@@ -246,13 +245,6 @@ pub fn exchange(comm: &dyn Collective, mine: Control) -> Control {
         stop: buf[1] != 0,
         checkpoint_due: buf[2] != 0,
     }
-}
-
-/// Bytes one rank sends for one mix of `models` models of `dim` features:
-/// `v` and `U` in `f64` and the two bias sums (what [`mix_across`] reduces; the
-/// collective may send each byte more than once, depending on its algorithm).
-pub fn mix_bytes(models: usize, dim: usize) -> u64 {
-    (models * (2 * dim + 2) * 8) as u64
 }
 
 #[cfg(test)]

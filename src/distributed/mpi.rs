@@ -48,12 +48,6 @@ impl World {
         self.world.size() as usize
     }
 
-    /// End the whole job at once (every process of it), with exit status
-    /// `code`: for a failure that the other processes cannot learn of.
-    pub fn abort(&self, code: i32) -> ! {
-        self.world.abort(code)
-    }
-
     fn answer(&self, request: Request) -> Reply {
         match request {
             Request::Sum(mine) => {
