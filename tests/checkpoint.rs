@@ -61,6 +61,16 @@ fn spawn_checkpointing(ds: &Path, model: &Path, ck: &Path, extra: &[&str]) -> Ch
     child
 }
 
+/// Steps of one epoch (seed 1, batches of 64) over the training shards `list`:
+/// batches do not cross groups of shards, so Σ over its groups of ⌈rows/64⌉
+/// (the groups of `solver::order`).
+fn epoch_steps(list: &[&tamis::dataset::ShardEntry], epoch: u32) -> u64 {
+    tamis::solver::order::groups(list.len(), 1, epoch)
+        .iter()
+        .map(|g| g.iter().map(|&i| list[i].rows).sum::<u64>().div_ceil(64))
+        .sum()
+}
+
 /// Identity of the file at `p` as it is now: a rename into place gives a new inode.
 fn identity(p: &Path) -> Option<(u64, std::time::SystemTime)> {
     use std::os::unix::fs::MetadataExt;
@@ -515,20 +525,12 @@ fn appended_shards_join_from_the_next_epoch() {
     ingest(&[&day2], &ds, &["--append", "-q"]).ok();
     let o = tamis(["train", "--resume", s(&ck), "--allow-appended"]);
     o.ok().stderr_has("join from the next epoch");
-    // The step count tells which shards each epoch read: batches do not cross
-    // groups of shards, so an epoch over the shard list L takes
-    // Σ over its groups of ⌈rows/64⌉ steps (order from `solver::order`).
+    // The step count tells which shards each epoch read.
     let m = manifest(&ds);
     let train: Vec<_> = m.shards_of(tamis::dataset::Split::Train).collect();
-    let steps = |list: &[&tamis::dataset::ShardEntry], epoch: u32| -> u64 {
-        tamis::solver::order::groups(list.len(), 1, epoch)
-            .iter()
-            .map(|g| g.iter().map(|&i| list[i].rows).sum::<u64>().div_ceil(64))
-            .sum()
-    };
     let old: Vec<_> = train.iter().copied().filter(|e| e.batch == 0).collect();
     assert!(old.len() < train.len());
-    let want = steps(&old, 0) + steps(&train, 1) + steps(&train, 2);
+    let want = epoch_steps(&old, 0) + epoch_steps(&train, 1) + epoch_steps(&train, 2);
     let meta = model_meta(&model);
     assert_eq!(meta["epochs"].as_array().unwrap().len(), 3);
     assert_eq!(meta["steps"].as_u64().unwrap(), want);
@@ -859,12 +861,6 @@ fn a_checkpoint_of_another_epoch_order_restarts_its_epoch() {
     // Steps: those taken before the stop, then two whole epochs.
     let m = manifest(&ds);
     let train: Vec<_> = m.shards_of(tamis::dataset::Split::Train).collect();
-    let steps = |epoch: u32| -> u64 {
-        tamis::solver::order::groups(train.len(), 1, epoch)
-            .iter()
-            .map(|g| g.iter().map(|&i| train[i].rows).sum::<u64>().div_ceil(64))
-            .sum()
-    };
-    let want = p["step"].as_u64().unwrap() + steps(0) + steps(1);
+    let want = p["step"].as_u64().unwrap() + epoch_steps(&train, 0) + epoch_steps(&train, 1);
     assert_eq!(model_meta(&model)["steps"].as_u64().unwrap(), want);
 }
