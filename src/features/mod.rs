@@ -1013,14 +1013,17 @@ impl Featurizer {
             rv[w] = v;
             w += (count != 0) as usize;
         }
-        indices.extend_from_slice(&rb[..w]);
-        values.extend_from_slice(&rv[..w]);
+        // Normalise in the scratch row, before the copy out: scaling the copy
+        // would load what a bulk copy has just stored, which waits for the
+        // stores to drain.
         if !raw && norm > 0.0 {
             let inv = 1.0 / norm.sqrt();
-            for v in &mut values[start..] {
+            for v in &mut rv[..w] {
                 *v *= inv;
             }
         }
+        indices.extend_from_slice(&rb[..w]);
+        values.extend_from_slice(&rv[..w]);
         if !self.numeric.is_empty() {
             let out = &mut self.merged;
             out.clear();
