@@ -249,7 +249,10 @@ impl Header {
                 checksum: u64_at(bytes, e + 24),
             };
             let stop = s.offset.checked_add(s.len);
-            if s.offset % ALIGN != 0 || s.offset < end || stop.is_none_or(|x| x > file_len) {
+            if !s.offset.is_multiple_of(ALIGN)
+                || s.offset < end
+                || stop.is_none_or(|x| x > file_len)
+            {
                 return Err(Error::Corrupt {
                     path: p(),
                     what: format!(

@@ -111,7 +111,7 @@ fn series<'a, 'b: 'a>(
         .iter()
         .copied()
         .enumerate()
-        .filter(|(k, _)| (k + i) % every == 0)
+        .filter(|(k, _)| (k + i).is_multiple_of(every))
         .map(|(_, p)| p)
         .collect();
     markers(chart, &marks, i, Some(label))

@@ -88,7 +88,7 @@ fn one_replica_is_the_plain_path_and_the_settings_are_recorded() {
     // The default interval: about 16 nonzeros per feature per replica, in
     // whole rounds of 2 × 64 rows.
     let every = st["sync_every"].as_u64().unwrap();
-    assert!(every > 0 && every % 128 == 0, "sync_every {every}");
+    assert!(every > 0 && every.is_multiple_of(128), "sync_every {every}");
     let m = manifest(&ds);
     let nnz_per_row = m.nnz() as f64 / (m.train_rows() + m.validation_rows()) as f64;
     let want = 2.0 * 16.0 * (1 << 14) as f64 / nnz_per_row;

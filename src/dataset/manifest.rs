@@ -276,7 +276,11 @@ impl Manifest {
         }
         m.features.validate().map_err(|e| corrupt(e.to_string()))?;
         let sc = &m.scatter;
-        if sc.parts == 0 || sc.writers == 0 || sc.writers % sc.parts != 0 || sc.shard_rows == 0 {
+        if sc.parts == 0
+            || sc.writers == 0
+            || !sc.writers.is_multiple_of(sc.parts)
+            || sc.shard_rows == 0
+        {
             return Err(corrupt(format!(
                 "scatter rule of {} writer(s) in {} part(s) with {} rows per shard is not one ingest writes",
                 sc.writers, sc.parts, sc.shard_rows

@@ -747,7 +747,7 @@ impl Chooser {
         }
         let at = self.steps % Self::EVERY;
         if at < Self::TRIAL * Self::RUNS {
-            (at / Self::TRIAL) % 2 == 0
+            (at / Self::TRIAL).is_multiple_of(2)
         } else {
             self.pool
         }
