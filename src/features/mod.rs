@@ -29,6 +29,9 @@ use xxhash_rust::xxh3::xxh3_64_with_seed;
 
 use crate::error::{Error, Result};
 
+mod keysort;
+use keysort::sort_keys;
+
 /// Identifier of the tokenizing and hashing scheme described in this module.
 pub const HASH_SCHEME: &str = "tamis-xxh3-signed-1";
 /// Odd constant used to separate n-gram orders (2^64 / golden ratio).
@@ -795,8 +798,11 @@ pub struct Featurizer {
     /// Buckets and values of the row being finished.
     run_buckets: Vec<u32>,
     run_values: Vec<f32>,
+    run_counts: Vec<i32>,
     /// `sign(c)·ln_1p(|c|)` for counts `|c| < LN1P_TABLE`, at `c + LN1P_TABLE`.
     ln1p: [f32; 2 * LN1P_TABLE],
+    /// Whether rows are sorted with AVX-512 (see `keysort`).
+    wide_sort: bool,
 }
 
 /// Counts whose damped value is looked up rather than computed.
@@ -853,10 +859,12 @@ impl Featurizer {
             sorted: Vec::with_capacity(256),
             run_buckets: Vec::with_capacity(256),
             run_values: Vec::with_capacity(256),
+            run_counts: Vec::with_capacity(256),
             ln1p: std::array::from_fn(|i| match i as i32 - LN1P_TABLE as i32 {
                 0 => 0.0,
                 c => damped(c),
             }),
+            wide_sort: keysort::has_wide_sort(),
         })
     }
 
@@ -977,7 +985,12 @@ impl Featurizer {
     /// and values to `indices` and `values`. Returns the number of entries added.
     pub fn finish_row(&mut self, indices: &mut Vec<u32>, values: &mut Vec<f32>) -> usize {
         let start = indices.len();
-        sort_keys(&mut self.text, &mut self.sorted, self.cfg.log2_buckets + 1);
+        sort_keys(
+            &mut self.text,
+            &mut self.sorted,
+            self.cfg.log2_buckets + 1,
+            self.wide_sort,
+        );
         let raw = self.cfg.raw_counts;
         let t = &self.text;
         let n = t.len();
@@ -985,20 +998,34 @@ impl Featurizer {
         if self.run_buckets.len() < n {
             self.run_buckets.resize(n, 0);
             self.run_values.resize(n, 0.0);
+            self.run_counts.resize(n, 0);
         }
         let rb = &mut self.run_buckets[..n];
         let rv = &mut self.run_values[..n];
+        let rc = &mut self.run_counts[..n];
+        // Runs of equal buckets and their signed counts, without a branch on
+        // the keys: each step stores the run so far, and moves on to a new
+        // run when the bucket changes.
+        let sign = |k: u32| 1 - 2 * (k & 1) as i32;
+        let mut runs = 0;
+        if n > 0 {
+            let (mut bucket, mut count) = (t[0] >> 1, sign(t[0]));
+            for &k in &t[1..] {
+                rb[runs] = bucket;
+                rc[runs] = count;
+                let new = (k >> 1 != bucket) as usize;
+                runs += new;
+                count = if new == 1 { sign(k) } else { count + sign(k) };
+                bucket = k >> 1;
+            }
+            rb[runs] = bucket;
+            rc[runs] = count;
+            runs += 1;
+        }
         let mut norm = 0.0f32;
         let mut w = 0;
-        let mut i = 0;
-        while i < n {
-            let bucket = t[i] >> 1;
-            let mut count = 1 - 2 * (t[i] & 1) as i32;
-            i += 1;
-            while i < n && t[i] >> 1 == bucket {
-                count += 1 - 2 * (t[i] & 1) as i32;
-                i += 1;
-            }
+        for r in 0..runs {
+            let (bucket, count) = (rb[r], rc[r]);
             // Damp, drop the counts that cancelled (a value 0 is overwritten by
             // the next bucket), and sum the squares.
             let v = if raw {
@@ -1048,51 +1075,6 @@ impl Featurizer {
         }
         indices.len() - start
     }
-}
-
-/// Sort a row's packed keys (each below `2^key_bits`) in increasing order.
-///
-/// Rows of typical length are distributed over 64 bins by their top bits (a
-/// counting sort: the keys are hashes, so the bins are even) and finished by an
-/// insertion sort, which only has to fix the order inside each bin; other
-/// lengths use the standard unstable sort. Equal keys are equal values, so the
-/// result is the same as any other sort's.
-fn sort_keys(keys: &mut Vec<u32>, scratch: &mut Vec<u32>, key_bits: u32) {
-    const BINS: usize = 64;
-    let n = keys.len();
-    if !(24..=256).contains(&n) {
-        keys.sort_unstable();
-        return;
-    }
-    let shift = key_bits.saturating_sub(BINS.trailing_zeros());
-    let bin = |k: u32| (k >> shift) as usize & (BINS - 1);
-    let mut start = [0u32; BINS];
-    for &k in keys.iter() {
-        start[bin(k)] += 1;
-    }
-    let mut sum = 0;
-    for c in start.iter_mut() {
-        let here = *c;
-        *c = sum;
-        sum += here;
-    }
-    scratch.clear();
-    scratch.resize(n, 0);
-    for &k in keys.iter() {
-        let b = bin(k);
-        scratch[start[b] as usize] = k;
-        start[b] += 1;
-    }
-    for i in 1..n {
-        let k = scratch[i];
-        let mut j = i;
-        while j > 0 && scratch[j - 1] > k {
-            scratch[j] = scratch[j - 1];
-            j -= 1;
-        }
-        scratch[j] = k;
-    }
-    std::mem::swap(keys, scratch);
 }
 
 /// Sort by bucket, sum duplicates, drop zeros.
@@ -1243,27 +1225,6 @@ mod tests {
                 ngram_hash(seed, &[a, b]),
                 "seed {seed:#x}, {a:#x}, {b:#x}"
             );
-        }
-    }
-
-    #[test]
-    fn key_sort_matches_standard_sort() {
-        use rand::{Rng, SeedableRng};
-        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(5);
-        let mut scratch = Vec::new();
-        for bits in [11, 21, 29] {
-            for n in [0, 1, 23, 24, 25, 40, 100, 256, 257, 600] {
-                let mut keys: Vec<u32> =
-                    (0..n).map(|_| rng.random_range(0..1u32 << bits)).collect();
-                // Duplicates, as repeated words give.
-                for i in (0..n).step_by(7).skip(1) {
-                    keys[i] = keys[i - 1];
-                }
-                let mut want = keys.clone();
-                want.sort_unstable();
-                sort_keys(&mut keys, &mut scratch, bits);
-                assert_eq!(keys, want, "bits {bits}, n {n}");
-            }
         }
     }
 
