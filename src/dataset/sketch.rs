@@ -668,6 +668,52 @@ type IdBuild = BuildHasherDefault<IdHasher>;
 pub struct ChunkCounter {
     fields: Vec<FieldCounter>,
     row: u32,
+    /// Scratch of [`sort_by_hash`].
+    scratch: Vec<ChunkEntry>,
+}
+
+/// A token of a chunk's summary: hash, rows, start and length of its text.
+type ChunkEntry = (u64, u64, u32, u32);
+
+/// Sort a chunk's entries by hash (distinct), as the standard sort would.
+///
+/// The hashes are uniform, so the entries are first spread over about one bin
+/// per entry by their top bits (a counting sort), and an insertion sort then
+/// only has to order the few that share a bin: linear time for what is sorted
+/// once per chunk and field.
+fn sort_by_hash(entries: &mut Vec<ChunkEntry>, scratch: &mut Vec<ChunkEntry>) {
+    let n = entries.len();
+    if n < 64 {
+        entries.sort_unstable_by_key(|e| e.0);
+        return;
+    }
+    let bits = n.next_power_of_two().trailing_zeros();
+    let bin = |h: u64| (h >> (64 - bits)) as usize;
+    let mut start = vec![0u32; 1 << bits];
+    for e in entries.iter() {
+        start[bin(e.0)] += 1;
+    }
+    let mut sum = 0;
+    for c in start.iter_mut() {
+        (*c, sum) = (sum, sum + *c);
+    }
+    scratch.clear();
+    scratch.resize(n, (0, 0, 0, 0));
+    for &e in entries.iter() {
+        let b = bin(e.0);
+        scratch[start[b] as usize] = e;
+        start[b] += 1;
+    }
+    for i in 1..n {
+        let e = scratch[i];
+        let mut j = i;
+        while j > 0 && scratch[j - 1].0 > e.0 {
+            scratch[j] = scratch[j - 1];
+            j -= 1;
+        }
+        scratch[j] = e;
+    }
+    std::mem::swap(entries, scratch);
 }
 
 /// A counted token: its hash, rows, the last row it was counted in, and where
@@ -771,6 +817,7 @@ impl ChunkCounter {
         ChunkCounter {
             fields: (0..fields).map(|_| FieldCounter::default()).collect(),
             row: 0,
+            scratch: Vec::new(),
         }
     }
 
@@ -824,7 +871,7 @@ impl ChunkCounter {
             }
             // In order of hash, as [`FieldSketch::merge_chunk`] walks them
             // (sorted here, in the worker, rather than in the writer).
-            entries.sort_unstable_by_key(|e| e.0);
+            sort_by_hash(&mut entries, &mut self.scratch);
             // The summary takes the text; the counter gets the old summary's
             // buffer.
             let mut text = std::mem::take(&mut o.text);
@@ -879,6 +926,30 @@ mod tests {
             numeric_fields: vec![],
             mask_digits: false,
             mask_emails: false,
+        }
+    }
+
+    #[test]
+    fn chunk_entries_sort_by_hash_like_the_standard_sort() {
+        let mut x = 0x9E37_79B9_7F4A_7C15u64;
+        let mut scratch = Vec::new();
+        for n in [0, 1, 63, 64, 65, 1000, 8191, 8192, 8193, 20000] {
+            let mut e: Vec<ChunkEntry> = (0..n)
+                .map(|i| {
+                    x ^= x << 13;
+                    x ^= x >> 7;
+                    x ^= x << 17;
+                    // Hashes bunched in a few bins too, not only uniform ones.
+                    let h = if i % 4 == 0 { x >> 40 } else { x };
+                    (h, i as u64, i as u32, 1)
+                })
+                .collect();
+            e.sort_unstable_by_key(|e| e.0);
+            e.dedup_by_key(|e| e.0);
+            let want: Vec<ChunkEntry> = e.clone();
+            e.reverse();
+            sort_by_hash(&mut e, &mut scratch);
+            assert_eq!(e, want, "{n} entries");
         }
     }
 
