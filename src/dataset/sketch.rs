@@ -669,7 +669,7 @@ pub struct ChunkCounter {
     fields: Vec<FieldCounter>,
     row: u32,
     /// Scratch of [`sort_by_hash`].
-    scratch: Vec<ChunkEntry>,
+    scratch: SortScratch,
 }
 
 /// A token of a chunk's summary: hash, rows, start and length of its text.
@@ -678,10 +678,11 @@ type ChunkEntry = (u64, u64, u32, u32);
 /// Sort a chunk's entries by hash (distinct), as the standard sort would.
 ///
 /// The hashes are uniform, so the entries are first spread over about one bin
-/// per entry by their top bits (a counting sort), and an insertion sort then
-/// only has to order the few that share a bin: linear time for what is sorted
-/// once per chunk and field.
-fn sort_by_hash(entries: &mut Vec<ChunkEntry>, scratch: &mut Vec<ChunkEntry>) {
+/// per entry by their top bits (a counting sort), and each bin is then sorted on
+/// its own: by insertion when it holds a few entries, as it does for hashes of
+/// real tokens (expected linear time), by the standard sort when it holds more,
+/// so that hashes made to share their top bits cost `O(n log n)`, not `O(n²)`.
+fn sort_by_hash(entries: &mut Vec<ChunkEntry>, scratch: &mut SortScratch) {
     let n = entries.len();
     if n < 64 {
         entries.sort_unstable_by_key(|e| e.0);
@@ -689,31 +690,50 @@ fn sort_by_hash(entries: &mut Vec<ChunkEntry>, scratch: &mut Vec<ChunkEntry>) {
     }
     let bits = n.next_power_of_two().trailing_zeros();
     let bin = |h: u64| (h >> (64 - bits)) as usize;
-    let mut start = vec![0u32; 1 << bits];
+    let SortScratch { bins, entries: out } = scratch;
+    bins.clear();
+    bins.resize(1 << bits, 0);
     for e in entries.iter() {
-        start[bin(e.0)] += 1;
+        bins[bin(e.0)] += 1;
     }
     let mut sum = 0;
-    for c in start.iter_mut() {
+    for c in bins.iter_mut() {
         (*c, sum) = (sum, sum + *c);
     }
-    scratch.clear();
-    scratch.resize(n, (0, 0, 0, 0));
+    out.clear();
+    out.resize(n, (0, 0, 0, 0));
     for &e in entries.iter() {
         let b = bin(e.0);
-        scratch[start[b] as usize] = e;
-        start[b] += 1;
+        out[bins[b] as usize] = e;
+        bins[b] += 1;
     }
-    for i in 1..n {
-        let e = scratch[i];
-        let mut j = i;
-        while j > 0 && scratch[j - 1].0 > e.0 {
-            scratch[j] = scratch[j - 1];
-            j -= 1;
+    // `bins[b]` is now where bin `b` ends.
+    let mut from = 0;
+    for &end in bins.iter() {
+        let part = &mut out[from..end as usize];
+        if part.len() > 16 {
+            part.sort_unstable_by_key(|e| e.0);
+        } else {
+            for i in 1..part.len() {
+                let e = part[i];
+                let mut j = i;
+                while j > 0 && part[j - 1].0 > e.0 {
+                    part[j] = part[j - 1];
+                    j -= 1;
+                }
+                part[j] = e;
+            }
         }
-        scratch[j] = e;
+        from = end as usize;
     }
-    std::mem::swap(entries, scratch);
+    std::mem::swap(entries, out);
+}
+
+/// Buffers of [`sort_by_hash`], kept from chunk to chunk.
+#[derive(Default)]
+struct SortScratch {
+    bins: Vec<u32>,
+    entries: Vec<ChunkEntry>,
 }
 
 /// A counted token: its hash, rows, the last row it was counted in, and where
@@ -817,7 +837,7 @@ impl ChunkCounter {
         ChunkCounter {
             fields: (0..fields).map(|_| FieldCounter::default()).collect(),
             row: 0,
-            scratch: Vec::new(),
+            scratch: SortScratch::default(),
         }
     }
 
@@ -932,15 +952,20 @@ mod tests {
     #[test]
     fn chunk_entries_sort_by_hash_like_the_standard_sort() {
         let mut x = 0x9E37_79B9_7F4A_7C15u64;
-        let mut scratch = Vec::new();
+        let mut scratch = SortScratch::default();
         for n in [0, 1, 63, 64, 65, 1000, 8191, 8192, 8193, 20000] {
             let mut e: Vec<ChunkEntry> = (0..n)
                 .map(|i| {
                     x ^= x << 13;
                     x ^= x >> 7;
                     x ^= x << 17;
-                    // Hashes bunched in a few bins too, not only uniform ones.
-                    let h = if i % 4 == 0 { x >> 40 } else { x };
+                    // Hashes bunched in a few bins too (some sharing all their
+                    // top bits, as crafted tokens could), not only uniform ones.
+                    let h = match i % 4 {
+                        0 => x >> 40,
+                        1 => x & 0xffff,
+                        _ => x,
+                    };
                     (h, i as u64, i as u32, 1)
                 })
                 .collect();

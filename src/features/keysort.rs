@@ -3,38 +3,52 @@
 //!
 //! A row of short messages has a few dozen keys. Where the processor has
 //! AVX-512, rows of up to 64 keys are sorted by a bitonic sorting network
-//! (Batcher 1968, "Sorting networks and their applications") held in one to four
-//! 16-lane registers, padded with `u32::MAX`: a fixed sequence of compare-exchange
+//! (Batcher 1968, "Sorting networks and their applications") held in one, two
+//! or four 16-lane registers, padded with `u32::MAX`: a fixed sequence of compare-exchange
 //! steps with no branch that depends on the keys. Other rows, and other
 //! processors, use a counting sort by the keys' top bits finished by an
 //! insertion sort, or the standard sort. Every path gives the same order (the
 //! keys are plain integers), which a test checks.
 
+/// Proof that this processor runs the AVX-512 sorting network: only
+/// [`WideSort::detect`] makes one.
+#[derive(Debug, Clone, Copy)]
+pub(super) struct WideSort(());
+
+impl WideSort {
+    /// `Some` when the processor has AVX-512F, and `TAMIS_NO_AVX512` is not
+    /// set in the environment (a way to run the portable path on any machine).
+    pub(super) fn detect() -> Option<WideSort> {
+        if std::env::var_os("TAMIS_NO_AVX512").is_some() {
+            return None;
+        }
+        #[cfg(target_arch = "x86_64")]
+        if std::arch::is_x86_feature_detected!("avx512f") {
+            return Some(WideSort(()));
+        }
+        None
+    }
+}
+
 /// Sort a row's keys (each below `2^key_bits`, `key_bits ≤ 32`) in increasing
-/// order; `wide` says that AVX-512 may be used ([`has_wide_sort`]).
+/// order, with the AVX-512 network when `wide` is given and the row is short
+/// enough.
 #[inline]
-pub(super) fn sort_keys(keys: &mut Vec<u32>, scratch: &mut Vec<u32>, key_bits: u32, wide: bool) {
+pub(super) fn sort_keys(
+    keys: &mut Vec<u32>,
+    scratch: &mut Vec<u32>,
+    key_bits: u32,
+    wide: Option<WideSort>,
+) {
     #[cfg(target_arch = "x86_64")]
-    if wide && keys.len() <= 64 {
-        // SAFETY: `wide` is true only when the processor has AVX-512F
-        // (`has_wide_sort`), and the row holds at most 64 keys.
+    if let (Some(_), true) = (wide, keys.len() <= 64) {
+        // SAFETY: a `WideSort` exists only when the processor has AVX-512F
+        // (`WideSort::detect`), and the row holds at most 64 keys.
         unsafe { avx512::sort_up_to_64(keys) };
         return;
     }
     let _ = wide;
     sort_scalar(keys, scratch, key_bits);
-}
-
-/// Whether this processor runs the AVX-512 sorting network.
-pub(super) fn has_wide_sort() -> bool {
-    #[cfg(target_arch = "x86_64")]
-    {
-        std::arch::is_x86_feature_detected!("avx512f")
-    }
-    #[cfg(not(target_arch = "x86_64"))]
-    {
-        false
-    }
 }
 
 /// The sort without AVX-512.
@@ -90,52 +104,59 @@ mod avx512 {
     /// only the first `keys.len()` lanes are stored back.
     ///
     /// # Safety
-    /// The processor must have AVX-512F, and `keys.len() ≤ 64`.
+    /// The processor must have AVX-512F.
     #[target_feature(enable = "avx512f")]
     pub(super) unsafe fn sort_up_to_64(keys: &mut [u32]) {
         let n = keys.len();
-        debug_assert!(n <= 64);
-        let p = keys.as_mut_ptr();
+        assert!(n <= 64, "the network sorts at most 64 keys");
+        // Piece `r` of the keys: lanes of register `r` (short or empty at the end).
+        let piece = |r: usize| (16 * r).min(n)..(16 * r + 16).min(n);
         if n <= 1 {
         } else if n <= 16 {
-            let mut v = [load(p, n)];
+            let mut v = [load(keys)];
             network(&mut v);
-            store(p, n, v[0]);
+            store(keys, v[0]);
         } else if n <= 32 {
-            let mut v = [load(p, 16), load(p.add(16), n - 16)];
+            let mut v = [load(&keys[piece(0)]), load(&keys[piece(1)])];
             network(&mut v);
-            store(p, 16, v[0]);
-            store(p.add(16), n - 16, v[1]);
+            store(&mut keys[piece(0)], v[0]);
+            store(&mut keys[piece(1)], v[1]);
         } else {
             let mut v = [
-                load(p, 16),
-                load(p.add(16), 16),
-                load(p.add(32), (n - 32).min(16)),
-                load(p.add(48), n.saturating_sub(48)),
+                load(&keys[piece(0)]),
+                load(&keys[piece(1)]),
+                load(&keys[piece(2)]),
+                load(&keys[piece(3)]),
             ];
             network(&mut v);
             for (r, &x) in v.iter().enumerate() {
-                let at = 16 * r;
-                store(p.add(at), n.saturating_sub(at).min(16), x);
+                store(&mut keys[piece(r)], x);
             }
         }
     }
 
-    /// The first `len ≤ 16` keys at `p`, the other lanes `u32::MAX`; lanes past
-    /// `len` are not read (a masked load does not touch them).
+    /// The keys of `part` (at most 16) in the first lanes, `u32::MAX` in the
+    /// others. The load is masked to `part`'s length: nothing past it is read.
     #[inline]
     #[target_feature(enable = "avx512f")]
-    unsafe fn load(p: *const u32, len: usize) -> __m512i {
-        let mask = ((1u32 << len) - 1) as u16;
-        _mm512_mask_loadu_epi32(_mm512_set1_epi32(-1), mask, p as *const i32)
+    fn load(part: &[u32]) -> __m512i {
+        debug_assert!(part.len() <= 16);
+        let mask = ((1u32 << part.len()) - 1) as u16;
+        // SAFETY: the mask selects exactly the `part.len()` elements of `part`,
+        // which are valid to read; masked-off lanes are not accessed.
+        unsafe { _mm512_mask_loadu_epi32(_mm512_set1_epi32(-1), mask, part.as_ptr() as *const i32) }
     }
 
-    /// Store the first `len ≤ 16` lanes of `v` at `p`.
+    /// Store the first `part.len()` (at most 16) lanes of `v` into `part`; the
+    /// store is masked: nothing past it is written.
     #[inline]
     #[target_feature(enable = "avx512f")]
-    unsafe fn store(p: *mut u32, len: usize, v: __m512i) {
-        let mask = ((1u32 << len) - 1) as u16;
-        _mm512_mask_storeu_epi32(p as *mut i32, mask, v)
+    fn store(part: &mut [u32], v: __m512i) {
+        debug_assert!(part.len() <= 16);
+        let mask = ((1u32 << part.len()) - 1) as u16;
+        // SAFETY: the mask selects exactly the `part.len()` elements of `part`,
+        // which are valid to write; masked-off lanes are not accessed.
+        unsafe { _mm512_mask_storeu_epi32(part.as_mut_ptr() as *mut i32, mask, v) }
     }
 
     /// Lanes `i` with `i & j ≠ 0`, for `j` = 1, 2, 4, 8.
@@ -230,16 +251,29 @@ mod tests {
     use super::*;
     use proptest::prelude::*;
 
+    /// The network where the processor has it. With `TAMIS_REQUIRE_AVX512` set
+    /// (CI sets it when /proc/cpuinfo lists avx512f), its absence is a failure,
+    /// so that a broken detection cannot pass by testing the portable path only.
+    fn wide() -> Option<WideSort> {
+        let w = WideSort::detect();
+        if std::env::var_os("TAMIS_REQUIRE_AVX512").is_some() {
+            assert!(
+                w.is_some(),
+                "TAMIS_REQUIRE_AVX512 is set but AVX-512F was not detected"
+            );
+        }
+        w
+    }
+
     fn check(keys: &[u32], key_bits: u32) {
         let mut want = keys.to_vec();
         want.sort_unstable();
-        for wide in [false, true] {
-            if wide && !has_wide_sort() {
-                continue;
-            }
+        for wide in [None, wide()] {
+            // An exact-size vector: the network must not touch past its end.
             let mut got = keys.to_vec();
+            got.shrink_to_fit();
             sort_keys(&mut got, &mut Vec::new(), key_bits, wide);
-            assert_eq!(got, want, "wide {wide}, {} keys", keys.len());
+            assert_eq!(got, want, "wide {}, {} keys", wide.is_some(), keys.len());
         }
     }
 

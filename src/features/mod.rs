@@ -30,7 +30,7 @@ use xxhash_rust::xxh3::xxh3_64_with_seed;
 use crate::error::{Error, Result};
 
 mod keysort;
-use keysort::sort_keys;
+use keysort::{sort_keys, WideSort};
 
 /// Identifier of the tokenizing and hashing scheme described in this module.
 pub const HASH_SCHEME: &str = "tamis-xxh3-signed-1";
@@ -801,8 +801,8 @@ pub struct Featurizer {
     run_counts: Vec<i32>,
     /// `sign(c)·ln_1p(|c|)` for counts `|c| < LN1P_TABLE`, at `c + LN1P_TABLE`.
     ln1p: [f32; 2 * LN1P_TABLE],
-    /// Whether rows are sorted with AVX-512 (see `keysort`).
-    wide_sort: bool,
+    /// Rows are sorted with AVX-512 when this is given (see `keysort`).
+    wide_sort: Option<WideSort>,
 }
 
 /// Counts whose damped value is looked up rather than computed.
@@ -864,7 +864,7 @@ impl Featurizer {
                 0 => 0.0,
                 c => damped(c),
             }),
-            wide_sort: keysort::has_wide_sort(),
+            wide_sort: WideSort::detect(),
         })
     }
 
@@ -1015,7 +1015,8 @@ impl Featurizer {
                 rc[runs] = count;
                 let new = (k >> 1 != bucket) as usize;
                 runs += new;
-                count = if new == 1 { sign(k) } else { count + sign(k) };
+                // The count so far, or 0 on a new bucket (an arithmetic mask).
+                count = (count & (new as i32 - 1)) + sign(k);
                 bucket = k >> 1;
             }
             rb[runs] = bucket;
