@@ -1,15 +1,19 @@
 //! Criterion benchmarks of the ingest kernels: tokenizing alone, tokenizing +
-//! hashing a row, and parsing + hashing a whole TSV chunk as an ingest worker
-//! does.
+//! hashing a row, parsing + hashing a whole TSV chunk, and that with what else an
+//! ingest worker does to a chunk (the split hash of each record, document
+//! frequencies and the token sketch's counts).
 //!
 //! Input: `fixtures/inbox.tsv` (committed, invented) repeated to about 4 MiB, and
 //! a generated stream of short messages from `tamis::synth`.
 //! Run: `cargo bench --bench ingest`.
 
 use criterion::{criterion_group, criterion_main, Criterion, Throughput};
+use tamis::dataset::docfreq::DocCounter;
+use tamis::dataset::sketch::ChunkCounter;
 use tamis::features::{FeatureConfig, Featurizer};
 use tamis::input::{parse_chunk, Chunk, InputSpec, LabelMode, ParseScratch};
 use tamis::synth::{Synth, SynthConfig};
+use xxhash_rust::xxh3::xxh3_64_with_seed;
 
 fn config() -> FeatureConfig {
     FeatureConfig::plain(1, 20)
@@ -95,6 +99,41 @@ fn bench(c: &mut Criterion) {
                     |_| {},
                 );
                 idx.len()
+            })
+        });
+        g.bench_function("worker_chunk", |b| {
+            let mut f = Featurizer::new(&config()).unwrap();
+            let mut scratch = ParseScratch::default();
+            let mut df = DocCounter::new(1 << 20);
+            let mut tokens = ChunkCounter::new(1);
+            let mut summary = Vec::new();
+            let (mut idx, mut val) = (Vec::new(), Vec::new());
+            b.iter(|| {
+                idx.clear();
+                val.clear();
+                let mut validation = 0;
+                parse_chunk(
+                    &chunk,
+                    &spec,
+                    LabelMode::Required,
+                    &mut scratch,
+                    |r| {
+                        f.begin_row();
+                        tokens.next_row();
+                        let mut words = tokens.field(0);
+                        f.add_text_with(0, r.texts[0], |t, h| words.see(t, h));
+                        let start = idx.len();
+                        f.finish_row(&mut idx, &mut val);
+                        if xxh3_64_with_seed(r.raw, 5) >> 60 == 0 {
+                            validation += 1;
+                        } else {
+                            idx[start..].iter().for_each(|&i| df.add(i as usize));
+                        }
+                    },
+                    |_| {},
+                );
+                tokens.finish_into(10_000, &mut summary);
+                idx.len() + validation
             })
         });
         g.finish();
