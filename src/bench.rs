@@ -196,6 +196,22 @@ pub fn parse_size(s: &str) -> std::result::Result<u64, String> {
     Ok(bytes as u64)
 }
 
+/// fsync a file, or every file of a folder and the folder: the bench's pause
+/// between stages (untimed), after which no earlier output waits for write-back.
+fn settle(path: &Path) -> Result<()> {
+    if path.is_dir() {
+        for e in std::fs::read_dir(path).at(path)? {
+            let p = e.at(path)?.path();
+            if p.is_file() {
+                crate::container::sync_file(&p)?;
+            }
+        }
+        crate::container::sync_dir(path)
+    } else {
+        crate::container::sync_file(path)
+    }
+}
+
 /// Read files sequentially in 1 MiB blocks; returns bytes read and seconds.
 /// Every byte is summed, so the read cannot be skipped.
 pub fn scan(paths: &[PathBuf]) -> Result<(u64, f64, u64)> {
@@ -361,6 +377,9 @@ pub fn run(opts: &BenchOptions, progress: &dyn Fn(&str)) -> Result<BenchReport> 
         .at(&input)?;
         w.flush().at(&input)?;
     }
+    // Written data is flushed to disk before each timed stage, so that the
+    // kernel's write-back of one stage's output is not timed in the next.
+    settle(&input)?;
     let mut stages = Vec::new();
 
     // Limit 1: a plain read of the input (read once first, so both this and
@@ -411,6 +430,7 @@ pub fn run(opts: &BenchOptions, progress: &dyn Fn(&str)) -> Result<BenchReport> 
         progress(&format!("{stage}, {threads} thread(s)"));
         let out = ds(name);
         let (secs, peak, _) = run_child(exe, &ingest_args(&out, threads, binary), false)?;
+        settle(&out)?;
         let m = Manifest::load(&out)?;
         rows = m.train_rows() + m.labels.iter().map(|l| l.validation_rows).sum::<u64>();
         nnz = m.shards.iter().map(|s| s.nnz).sum();
