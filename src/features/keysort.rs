@@ -4,10 +4,10 @@
 //! A row of short messages has a few dozen keys. Where the processor has
 //! AVX-512, rows of up to 64 keys are sorted by a bitonic sorting network
 //! (Batcher 1968, "Sorting networks and their applications") held in one, two
-//! or four 16-lane registers, padded with `u32::MAX`: a fixed sequence of compare-exchange
-//! steps with no branch that depends on the keys. Other rows, and other
-//! processors, use a counting sort by the keys' top bits finished by an
-//! insertion sort, or the standard sort. Every path gives the same order (the
+//! or four 16-lane registers, padded with `u32::MAX`: a fixed sequence of
+//! compare-exchange steps with no branch that depends on the keys. Other rows,
+//! and other processors, use a counting sort by the keys' top bits finished by
+//! an insertion sort, or the standard sort. Every path gives the same order (the
 //! keys are plain integers), which a test checks.
 
 /// Proof that this processor runs the AVX-512 sorting network: only
