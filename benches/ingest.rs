@@ -11,7 +11,7 @@ use criterion::{criterion_group, criterion_main, Criterion, Throughput};
 use tamis::dataset::docfreq::DocCounter;
 use tamis::dataset::sketch::ChunkCounter;
 use tamis::features::{FeatureConfig, Featurizer};
-use tamis::input::{parse_chunk, Chunk, InputSpec, LabelMode, ParseScratch};
+use tamis::input::{parse_chunk, Chunk, Fields, InputSpec, LabelMode, ParseScratch};
 use tamis::synth::{Synth, SynthConfig};
 use xxhash_rust::xxh3::xxh3_64_with_seed;
 
@@ -35,6 +35,16 @@ fn corpus() -> Vec<(&'static str, Vec<u8>)> {
         .expect("in memory");
     out.push(("synth", data));
     out
+}
+
+/// Parse a TSV chunk as ingest does, calling `row` with every good record.
+fn each_record(
+    chunk: &Chunk,
+    spec: &InputSpec,
+    scratch: &mut ParseScratch,
+    row: impl FnMut(&Fields<'_>),
+) {
+    parse_chunk(chunk, spec, LabelMode::Required, scratch, row, |_| {});
 }
 
 fn bench(c: &mut Criterion) {
@@ -86,18 +96,11 @@ fn bench(c: &mut Criterion) {
             b.iter(|| {
                 idx.clear();
                 val.clear();
-                parse_chunk(
-                    &chunk,
-                    &spec,
-                    LabelMode::Required,
-                    &mut scratch,
-                    |r| {
-                        f.begin_row();
-                        f.add_text(0, r.texts[0]);
-                        f.finish_row(&mut idx, &mut val);
-                    },
-                    |_| {},
-                );
+                each_record(&chunk, &spec, &mut scratch, |r| {
+                    f.begin_row();
+                    f.add_text(0, r.texts[0]);
+                    f.finish_row(&mut idx, &mut val);
+                });
                 idx.len()
             })
         });
@@ -112,26 +115,19 @@ fn bench(c: &mut Criterion) {
                 idx.clear();
                 val.clear();
                 let mut validation = 0;
-                parse_chunk(
-                    &chunk,
-                    &spec,
-                    LabelMode::Required,
-                    &mut scratch,
-                    |r| {
-                        f.begin_row();
-                        tokens.next_row();
-                        let mut words = tokens.field(0);
-                        f.add_text_with(0, r.texts[0], |t, h| words.see(t, h));
-                        let start = idx.len();
-                        f.finish_row(&mut idx, &mut val);
-                        if xxh3_64_with_seed(r.raw, 5) >> 60 == 0 {
-                            validation += 1;
-                        } else {
-                            idx[start..].iter().for_each(|&i| df.add(i as usize));
-                        }
-                    },
-                    |_| {},
-                );
+                each_record(&chunk, &spec, &mut scratch, |r| {
+                    f.begin_row();
+                    tokens.next_row();
+                    let mut words = tokens.field(0);
+                    f.add_text_with(0, r.texts[0], |t, h| words.see(t, h));
+                    let start = idx.len();
+                    f.finish_row(&mut idx, &mut val);
+                    if xxh3_64_with_seed(r.raw, 5) >> 60 == 0 {
+                        validation += 1;
+                    } else {
+                        idx[start..].iter().for_each(|&i| df.add(i as usize));
+                    }
+                });
                 tokens.finish_into(10_000, &mut summary);
                 idx.len() + validation
             })
