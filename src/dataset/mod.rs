@@ -1,4 +1,4 @@
-//! Datasets: a folder of shards listed by a manifest, built by [`ingest`].
+//! Datasets: a folder of shards listed by a manifest, built by [`ingest()`].
 //!
 //! ```text
 //! DIR/manifest.json          the manifest (JSON, checksummed, replaced atomically)

@@ -782,7 +782,7 @@ pub struct Trainer {
     /// Configuration.
     pub cfg: SolverConfig,
     /// Steps taken so far: batches, counted over all replicas (a replica
-    /// advances it by [`Trainer::stride`] a step).
+    /// advances it by `Trainer::stride` a step).
     pub t: u64,
     /// Replicas taking batches in turn (1: a single copy); see
     /// [`Trainer::set_stride`].
