@@ -795,26 +795,49 @@ pub struct FieldTokens<'a> {
 
 impl FieldTokens<'_> {
     /// Count `token` (with unigram hash `hash`), once per row.
+    ///
+    /// The common case, a token already in its first slot, is kept small so that
+    /// it is inlined into the tokenizer's loop; the rest (probing on, a new
+    /// token, growing the table) is a call.
     #[inline(always)]
     pub fn see(&mut self, token: &[u8], hash: u64) {
         let (row, f) = (self.row, &mut *self.f);
         let mask = f.table.len() - 1;
+        let s = &mut f.table[hash as usize & mask];
+        if s.hash == hash && s.len != 0 {
+            if s.last_row != row {
+                s.last_row = row;
+                s.count += 1;
+                f.total += 1;
+            }
+            return;
+        }
+        f.see_probing(row, token, hash);
+    }
+}
+
+impl FieldCounter {
+    /// [`FieldTokens::see`] by the whole probe: every slot from the token's
+    /// first, until the token or an empty slot.
+    #[inline(never)]
+    fn see_probing(&mut self, row: u32, token: &[u8], hash: u64) {
+        let mask = self.table.len() - 1;
         let mut i = hash as usize & mask;
         loop {
-            let s = &mut f.table[i];
+            let s = &mut self.table[i];
             if s.len == 0 {
                 *s = Slot {
                     hash,
                     count: 1,
                     last_row: row,
-                    start: f.text.len() as u32,
+                    start: self.text.len() as u32,
                     len: token.len() as u32,
                 };
-                f.text.extend_from_slice(token);
-                f.total += 1;
-                f.used.push(i as u32);
-                if 2 * f.used.len() > f.table.len() {
-                    f.grow();
+                self.text.extend_from_slice(token);
+                self.total += 1;
+                self.used.push(i as u32);
+                if 2 * self.used.len() > self.table.len() {
+                    self.grow();
                 }
                 return;
             }
@@ -822,7 +845,7 @@ impl FieldTokens<'_> {
                 if s.last_row != row {
                     s.last_row = row;
                     s.count += 1;
-                    f.total += 1;
+                    self.total += 1;
                 }
                 return;
             }
