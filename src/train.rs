@@ -917,16 +917,28 @@ impl Run<'_> {
                         .iter()
                         .any(|p| (p.group, p.taken) != (0, 0));
                 resumed_part_way = part_way;
-                let mut restart = String::new();
-                if meta.epoch_order != order::ORDER_VERSION && part_way {
-                    // Positions of another order's rules: the epoch starts over.
+                // A part-way position means nothing under another order's
+                // rules or for another number of ranks' shares: the epoch in
+                // progress then starts over.
+                let restart = if meta.epoch_order != order::ORDER_VERSION && part_way {
+                    Some(
+                        "; the checkpoint was written by a tamis that drew epochs in \
+                         another order, so the epoch in progress starts over"
+                            .to_string(),
+                    )
+                } else if was != ranks && part_way {
+                    Some(format!(
+                        "; the checkpoint was taken by {was} rank(s) part-way through the epoch, \
+                         which starts over on {ranks}"
+                    ))
+                } else {
+                    None
+                };
+                if restart.is_some() {
                     position.group = 0;
                     position.taken = 0;
                     sums = EpochSums::default();
                     resumed_part_way = false;
-                    restart = "; the checkpoint was written by a tamis that drew epochs in \
-                               another order, so the epoch in progress starts over"
-                        .into();
                 } else if was == ranks && ranks > 1 {
                     // Each rank continues its own share, and its own sums.
                     match meta.rank_positions.get(rank) {
@@ -942,19 +954,9 @@ impl Run<'_> {
                             )))
                         }
                     }
-                } else if was != ranks && part_way {
-                    // Shares of another number of ranks: the epoch starts over.
-                    position.group = 0;
-                    position.taken = 0;
-                    sums = EpochSums::default();
-                    resumed_part_way = false;
-                    restart = format!(
-                        "; the checkpoint was taken by {was} rank(s) part-way through the epoch, \
-                         which starts over on {ranks}"
-                    );
                 }
                 (self.log)(&format!(
-                    "resuming at epoch {} of {}, step {}{}{restart}",
+                    "resuming at epoch {} of {}, step {}{}{}",
                     position.epoch.min(s.epochs - 1) + 1,
                     s.epochs,
                     position.step,
@@ -965,7 +967,8 @@ impl Run<'_> {
                         )
                     } else {
                         String::new()
-                    }
+                    },
+                    restart.as_deref().unwrap_or("")
                 ));
                 (Some(position), sums, meta.early_stop, meta.epochs, list)
             }
