@@ -262,9 +262,9 @@ fn new_manifest(opts: &IngestOptions) -> Result<Manifest> {
 }
 
 /// Training writers for `--scatter W` over `parts` parts: W rounded up to a
-/// multiple of the parts, so that every part gets as many.
+/// multiple of the parts (at least one), so that every part gets as many.
 fn writers_for(scatter: u32, parts: u32) -> u64 {
-    let parts = u64::from(parts.max(1));
+    let parts = u64::from(parts);
     u64::from(scatter).div_ceil(parts) * parts
 }
 
@@ -674,7 +674,7 @@ impl Sink {
             .collect();
         let batch = m.batches.len() as u32;
         let writers = m.scatter.writers as usize;
-        let parts = m.scatter.parts.max(1);
+        let parts = m.scatter.parts;
         Sink {
             dir: dir.to_path_buf(),
             cols: m.features.buckets(),
@@ -756,7 +756,7 @@ impl Sink {
     /// The part a writer's shards belong to.
     fn part_of(&self, slot: Slot) -> u32 {
         match slot {
-            Slot::Train(i) => (i as u32) % self.m.scatter.parts.max(1),
+            Slot::Train(i) => (i as u32) % self.m.scatter.parts,
             Slot::Validation(p) => p as u32,
         }
     }
@@ -845,14 +845,12 @@ impl Sink {
             if validation {
                 // A validation row's part, by the hash of its number (one part:
                 // no hash, as before parts existed).
-                let part = match self.m.scatter.parts as u64 {
-                    0 | 1 => 0,
-                    parts => {
-                        (xxh3_64_with_seed(
-                            &self.val_index.to_le_bytes(),
-                            scatter_seed ^ VALID_PART,
-                        ) % parts) as usize
-                    }
+                let parts = u64::from(self.m.scatter.parts);
+                let part = if parts == 1 {
+                    0
+                } else {
+                    (xxh3_64_with_seed(&self.val_index.to_le_bytes(), scatter_seed ^ VALID_PART)
+                        % parts) as usize
                 };
                 self.val_index += 1;
                 self.push_to(Slot::Validation(part), label, idx, val)?;

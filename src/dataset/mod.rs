@@ -78,12 +78,8 @@ pub fn verify(dir: &Path) -> Result<VerifyReport> {
 /// holding that part has) when `part` is given.
 pub fn verify_part(dir: &Path, part: Option<u32>) -> Result<VerifyReport> {
     let m = Manifest::load(dir)?;
-    if let Some(k) = part.filter(|&k| k >= m.scatter.parts.max(1)) {
-        return Err(Error::Invalid(format!(
-            "{}: part {k} does not exist: the dataset has {} part(s), numbered from 0",
-            dir.display(),
-            m.scatter.parts.max(1)
-        )));
+    if let Some(k) = part {
+        check_part(dir, &m, k)?;
     }
     let mut r = VerifyReport {
         checked: 1,
@@ -223,18 +219,25 @@ pub struct Stats {
     pub parts: u32,
 }
 
+/// Refuse a part number the dataset in `dir` does not have (a loaded
+/// manifest has at least one part).
+fn check_part(dir: &Path, m: &Manifest, part: u32) -> Result<()> {
+    if part >= m.scatter.parts {
+        return Err(Error::Invalid(format!(
+            "{}: part {part} does not exist: the dataset has {} part(s), numbered from 0",
+            dir.display(),
+            m.scatter.parts
+        )));
+    }
+    Ok(())
+}
+
 /// The files a node holding part `part` of the dataset in `dir` needs, relative
 /// to the folder: the manifest, the document-frequency and sketch files, and
 /// the shards of that part.
 pub fn part_files(dir: &Path, part: u32) -> Result<Vec<String>> {
     let m = Manifest::load(dir)?;
-    if part >= m.scatter.parts.max(1) {
-        return Err(Error::Invalid(format!(
-            "{}: part {part} does not exist: the dataset has {} part(s), numbered from 0",
-            dir.display(),
-            m.scatter.parts.max(1)
-        )));
-    }
+    check_part(dir, &m, part)?;
     let mut files = vec![manifest::MANIFEST_FILE.to_string()];
     files.extend(m.doc_freq.iter().map(|d| d.file.clone()));
     files.extend(m.sketches.iter().map(|s| s.file.clone()));
@@ -313,6 +316,6 @@ pub fn stats(dir: &Path) -> Result<Stats> {
             })
             .collect(),
         shard_bytes: m.shards.iter().map(|s| s.bytes).sum(),
-        parts: m.scatter.parts.max(1),
+        parts: m.scatter.parts,
     })
 }
