@@ -207,19 +207,19 @@ fn mix_model_across(m: &mut Linear, comm: &dyn Collective, p: usize) {
     let (v, u, mut scalars) = m.fold_scale();
     sum_in_pieces(comm, v);
     sum_in_pieces(comm, u);
-    let inv = p as f64;
+    let ranks = p as f64;
     for x in v.iter_mut() {
-        *x /= inv;
+        *x /= ranks;
     }
     for x in u.iter_mut() {
-        *x /= inv;
+        *x /= ranks;
     }
     let vnorm2 = v.iter().map(|x| x * x).sum::<f64>();
     // b and Σb are averaged; s = 1, B = 0 after the fold.
     let mut bs = [scalars[1], scalars[4]];
     comm.sum_f64(&mut bs);
-    scalars[1] = bs[0] / inv;
-    scalars[4] = bs[1] / inv;
+    scalars[1] = bs[0] / ranks;
+    scalars[4] = bs[1] / ranks;
     scalars[2] = vnorm2;
     m.set_scalars(scalars);
 }
