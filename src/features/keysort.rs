@@ -57,7 +57,7 @@ pub(super) fn sort_keys(
 /// counting sort: the keys are hashes, so the bins are even) and finished by an
 /// insertion sort, which only has to fix the order inside each bin; other
 /// lengths use the standard unstable sort.
-pub(super) fn sort_scalar(keys: &mut Vec<u32>, scratch: &mut Vec<u32>, key_bits: u32) {
+fn sort_scalar(keys: &mut Vec<u32>, scratch: &mut Vec<u32>, key_bits: u32) {
     const BINS: usize = 64;
     let n = keys.len();
     if !(24..=256).contains(&n) {
