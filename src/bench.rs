@@ -35,7 +35,7 @@
 
 use std::io::{Read, Write};
 use std::path::{Path, PathBuf};
-use std::process::{Command, Stdio};
+use std::process::{Command, ExitStatus, Stdio};
 use std::time::{Duration, Instant};
 
 use serde::{Deserialize, Serialize};
@@ -87,6 +87,11 @@ pub struct StageResult {
     pub peak_rss_anon: Option<u64>,
     /// Stage time over the time of its limit (plain read of the same bytes).
     pub ratio_to_limit: Option<f64>,
+    /// Cores the child process kept busy: its user and system CPU time over
+    /// its wall-clock time (for training, over the whole child, not the
+    /// epoch). Thread counts name worker threads; this says what they cost.
+    #[serde(default)]
+    pub cores: Option<f64>,
 }
 
 impl StageResult {
@@ -95,12 +100,12 @@ impl StageResult {
     fn over_input(
         stage: &str,
         threads: usize,
-        secs: f64,
-        peak: Option<u64>,
+        run: &ChildRun,
         bytes: u64,
         rows: u64,
         limit_secs: f64,
     ) -> StageResult {
+        let secs = run.seconds;
         StageResult {
             stage: stage.into(),
             threads,
@@ -109,8 +114,25 @@ impl StageResult {
             rows_per_second: Some(rows as f64 / secs),
             nnz_per_second: None,
             epoch: None,
-            peak_rss_anon: peak,
+            peak_rss_anon: run.peak_rss_anon,
             ratio_to_limit: Some(secs / limit_secs.max(1e-9)),
+            cores: run.cores(),
+        }
+    }
+
+    /// A limit measured in this process (no child, so no memory or cores).
+    fn limit(stage: &str, threads: usize, secs: f64) -> StageResult {
+        StageResult {
+            stage: stage.into(),
+            threads,
+            seconds: secs,
+            bytes_per_second: None,
+            rows_per_second: None,
+            nnz_per_second: None,
+            epoch: None,
+            peak_rss_anon: None,
+            ratio_to_limit: None,
+            cores: None,
         }
     }
 }
@@ -124,6 +146,9 @@ pub struct Scaling {
     pub threads: usize,
     /// Throughput with N threads over throughput with 1.
     pub speedup: f64,
+    /// Cores kept busy with 1 and with N threads (see [`StageResult::cores`]).
+    #[serde(default)]
+    pub cores: (Option<f64>, Option<f64>),
 }
 
 /// Everything a bench run measured.
@@ -237,9 +262,65 @@ pub fn scan(paths: &[PathBuf]) -> Result<(u64, f64, u64)> {
     Ok((total, start.elapsed().as_secs_f64(), sum))
 }
 
+/// What [`run_child`] measured of one child process.
+#[derive(Debug, Clone, Default)]
+struct ChildRun {
+    /// Wall-clock seconds from start to exit.
+    seconds: f64,
+    /// User plus system CPU seconds of all its threads (from `wait4`).
+    cpu_seconds: Option<f64>,
+    /// Peak sampled `RssAnon`, bytes.
+    peak_rss_anon: Option<u64>,
+    /// Standard output, when captured.
+    stdout: Vec<u8>,
+}
+
+impl ChildRun {
+    /// Cores kept busy on average: CPU time over wall-clock time.
+    fn cores(&self) -> Option<f64> {
+        self.cpu_seconds.map(|c| c / self.seconds.max(1e-9))
+    }
+}
+
+/// Wait for `child` without blocking: its exit status and CPU time (user plus
+/// system, every thread) once it has exited, `None` while it runs.
+#[cfg(unix)]
+fn try_reap(child: &mut std::process::Child) -> std::io::Result<Option<(ExitStatus, Option<f64>)>> {
+    use std::os::unix::process::ExitStatusExt;
+    let pid = child.id() as libc::pid_t;
+    let mut status: libc::c_int = 0;
+    // SAFETY: `rusage` is plain data that `wait4` fills in; `status` and
+    // `usage` outlive the call. The child is ours and not yet reaped (std's
+    // `Child` is not waited on anywhere else), so the pid names it.
+    let mut usage: libc::rusage = unsafe { std::mem::zeroed() };
+    let r = unsafe { libc::wait4(pid, &mut status, libc::WNOHANG, &mut usage) };
+    match r {
+        0 => Ok(None),
+        r if r == pid => {
+            let secs = |t: libc::timeval| t.tv_sec as f64 + t.tv_usec as f64 * 1e-6;
+            let cpu = secs(usage.ru_utime) + secs(usage.ru_stime);
+            Ok(Some((ExitStatus::from_raw(status), Some(cpu))))
+        }
+        _ => {
+            let e = std::io::Error::last_os_error();
+            if e.kind() == std::io::ErrorKind::Interrupted {
+                Ok(None)
+            } else {
+                Err(e)
+            }
+        }
+    }
+}
+
+/// Elsewhere the CPU time is not measured.
+#[cfg(not(unix))]
+fn try_reap(child: &mut std::process::Child) -> std::io::Result<Option<(ExitStatus, Option<f64>)>> {
+    Ok(child.try_wait()?.map(|s| (s, None)))
+}
+
 /// Run `exe args` with standard output captured (or thrown away), sampling its
-/// `RssAnon`. Returns (seconds, peak RssAnon, standard output).
-fn run_child(exe: &Path, args: &[String], capture: bool) -> Result<(f64, Option<u64>, Vec<u8>)> {
+/// `RssAnon` and taking its CPU time when it exits.
+fn run_child(exe: &Path, args: &[String], capture: bool) -> Result<ChildRun> {
     let start = Instant::now();
     let mut child = Command::new(exe)
         .args(args)
@@ -271,12 +352,12 @@ fn run_child(exe: &Path, args: &[String], capture: bool) -> Result<(f64, Option<
         v
     });
     let mut peak: Option<u64> = None;
-    let status = loop {
+    let (status, cpu_seconds) = loop {
         if let Some(kb) = read_rss_anon_kb(&status_path) {
             peak = Some(peak.map_or(kb, |p| p.max(kb)));
         }
-        match child.try_wait().at(exe)? {
-            Some(s) => break s,
+        match try_reap(&mut child).at(exe)? {
+            Some(done) => break done,
             None => std::thread::sleep(Duration::from_millis(SAMPLE_MS)),
         }
     };
@@ -290,7 +371,12 @@ fn run_child(exe: &Path, args: &[String], capture: bool) -> Result<(f64, Option<
             String::from_utf8_lossy(&err).trim()
         )));
     }
-    Ok((secs, peak.map(|kb| kb * 1024), out))
+    Ok(ChildRun {
+        seconds: secs,
+        cpu_seconds,
+        peak_rss_anon: peak.map(|kb| kb * 1024),
+        stdout: out,
+    })
 }
 
 fn read_rss_anon_kb(status: &Path) -> Option<u64> {
@@ -389,15 +475,9 @@ pub fn run(opts: &BenchOptions, progress: &dyn Fn(&str)) -> Result<BenchReport> 
     let (in_bytes, in_secs, _) = scan(std::slice::from_ref(&input))?;
     let in_bps = in_bytes as f64 / in_secs.max(1e-9);
     stages.push(StageResult {
-        stage: "read-input".into(),
-        threads: 1,
-        seconds: in_secs,
         bytes_per_second: Some(in_bps),
-        rows_per_second: None,
-        nnz_per_second: None,
-        epoch: None,
-        peak_rss_anon: None,
         ratio_to_limit: Some(1.0),
+        ..StageResult::limit("read-input", 1, in_secs)
     });
 
     // Ingest: 6 classes with 1 and N threads, binary with N.
@@ -429,13 +509,13 @@ pub fn run(opts: &BenchOptions, progress: &dyn Fn(&str)) -> Result<BenchReport> 
         let stage = if binary { "ingest-binary" } else { "ingest" };
         progress(&format!("{stage}, {threads} thread(s)"));
         let out = ds(name);
-        let (secs, peak, _) = run_child(exe, &ingest_args(&out, threads, binary), false)?;
+        let run = run_child(exe, &ingest_args(&out, threads, binary), false)?;
         settle(&out)?;
         let m = Manifest::load(&out)?;
         rows = m.train_rows() + m.labels.iter().map(|l| l.validation_rows).sum::<u64>();
         nnz = m.shards.iter().map(|s| s.nnz).sum();
         stages.push(StageResult::over_input(
-            stage, threads, secs, peak, in_bytes, rows, in_secs,
+            stage, threads, &run, in_bytes, rows, in_secs,
         ));
         if name == "ds-n" {
             // The single-thread copy must be the same dataset (same shard
@@ -473,15 +553,9 @@ pub fn run(opts: &BenchOptions, progress: &dyn Fn(&str)) -> Result<BenchReport> 
         .map(|s| s.bytes)
         .sum();
     stages.push(StageResult {
-        stage: "read-shards".into(),
-        threads: 1,
-        seconds: sh_secs,
         bytes_per_second: Some(sh_bps),
-        rows_per_second: None,
-        nnz_per_second: None,
-        epoch: None,
-        peak_rss_anon: None,
         ratio_to_limit: Some(1.0),
+        ..StageResult::limit("read-shards", 1, sh_secs)
     });
     // Limit 3: random reads of a weight-sized table, 1 and n threads, each on
     // its own part: how far memory-latency-bound work (a training step) can
@@ -493,15 +567,8 @@ pub fn run(opts: &BenchOptions, progress: &dyn Fn(&str)) -> Result<BenchReport> 
         }
         let (secs, reads) = random_reads(t, n);
         stages.push(StageResult {
-            stage: "random-reads".into(),
-            threads: t,
-            seconds: secs,
-            bytes_per_second: None,
-            rows_per_second: None,
             nnz_per_second: Some(reads as f64 / secs.max(1e-9)),
-            epoch: None,
-            peak_rss_anon: None,
-            ratio_to_limit: None,
+            ..StageResult::limit("random-reads", t, secs)
         });
     }
     let train_scan_secs = train_bytes as f64 / sh_bps;
@@ -527,11 +594,12 @@ pub fn run(opts: &BenchOptions, progress: &dyn Fn(&str)) -> Result<BenchReport> 
             s("--threads"),
             threads.to_string(),
         ];
-        let (_, peak, out) = run_child(exe, &args, true)?;
-        let parsed: TrainStageOutput = serde_json::from_slice(&out).map_err(|e| {
+        let run = run_child(exe, &args, true)?;
+        let out = &run.stdout;
+        let parsed: TrainStageOutput = serde_json::from_slice(out).map_err(|e| {
             Error::Invalid(format!(
                 "bench: the training stage printed no result ({e}): {}",
-                String::from_utf8_lossy(&out)
+                String::from_utf8_lossy(out)
             ))
         })?;
         if let (Some((bytes, write, load)), true) = (parsed.checkpoint, stage == "train-6class") {
@@ -541,29 +609,21 @@ pub fn run(opts: &BenchOptions, progress: &dyn Fn(&str)) -> Result<BenchReport> 
                 ("checkpoint-load", load, r_limit),
             ] {
                 stages.push(StageResult {
-                    stage: name.into(),
-                    threads,
-                    seconds: secs,
                     bytes_per_second: Some(bytes as f64 / secs.max(1e-9)),
-                    rows_per_second: None,
-                    nnz_per_second: None,
-                    epoch: None,
-                    peak_rss_anon: None,
                     ratio_to_limit: Some(secs / limit.max(1e-9)),
+                    ..StageResult::limit(name, threads, secs)
                 });
             }
         }
         for (i, &(secs, rps, nps)) in parsed.epochs.iter().enumerate() {
             stages.push(StageResult {
-                stage: stage.into(),
-                threads,
-                seconds: secs,
-                bytes_per_second: None,
                 rows_per_second: Some(rps),
                 nnz_per_second: Some(nps),
                 epoch: Some(i as u32 + 1),
-                peak_rss_anon: peak,
+                peak_rss_anon: run.peak_rss_anon,
                 ratio_to_limit: Some(secs / train_scan_secs.max(1e-9)),
+                cores: run.cores(),
+                ..StageResult::limit(stage, threads, secs)
             });
         }
     }
@@ -583,9 +643,9 @@ pub fn run(opts: &BenchOptions, progress: &dyn Fn(&str)) -> Result<BenchReport> 
             threads.to_string(),
             s("--quiet"),
         ];
-        let (secs, peak, _) = run_child(exe, &args, false)?;
+        let run = run_child(exe, &args, false)?;
         stages.push(StageResult::over_input(
-            "score", threads, secs, peak, in_bytes, rows, in_secs,
+            "score", threads, &run, in_bytes, rows, in_secs,
         ));
     }
 
@@ -713,6 +773,7 @@ fn scaling_of(stages: &[StageResult], n: usize) -> Vec<Scaling> {
                 stage: name.into(),
                 threads: n,
                 speedup: speed(b) / speed(a),
+                cores: (a.cores, b.cores),
             })
         })
         .collect()
@@ -733,13 +794,13 @@ pub fn table(r: &BenchReport) -> String {
             .map_or_else(|| "unknown".to_string(), |l| format!("{l:.2}")),
     ));
     out.push_str(&format!(
-        "{:<16} {:>3} {:>5} {:>11} {:>12} {:>12} {:>9} {:>10} {:>12}\n",
-        "stage", "thr", "epoch", "MB/s", "rows/s", "nnz/s", "secs", "x limit", "RssAnon"
+        "{:<16} {:>3} {:>5} {:>11} {:>12} {:>12} {:>9} {:>10} {:>6} {:>12}\n",
+        "stage", "thr", "epoch", "MB/s", "rows/s", "nnz/s", "secs", "x limit", "cores", "RssAnon"
     ));
     for st in &r.stages {
         let opt = |x: Option<f64>| x.map_or_else(|| "-".to_string(), si);
         out.push_str(&format!(
-            "{:<16} {:>3} {:>5} {:>11} {:>12} {:>12} {:>9.3} {:>10} {:>12}\n",
+            "{:<16} {:>3} {:>5} {:>11} {:>12} {:>12} {:>9.3} {:>10} {:>6} {:>12}\n",
             st.stage,
             st.threads,
             st.epoch.map_or_else(|| "-".to_string(), |e| e.to_string()),
@@ -750,6 +811,8 @@ pub fn table(r: &BenchReport) -> String {
             st.seconds,
             st.ratio_to_limit
                 .map_or_else(|| "-".to_string(), |x| format!("{x:.2}")),
+            st.cores
+                .map_or_else(|| "-".to_string(), |x| format!("{x:.2}")),
             st.peak_rss_anon.map_or_else(|| "-".to_string(), bytes),
         ));
     }
@@ -757,6 +820,9 @@ pub fn table(r: &BenchReport) -> String {
         out.push_str(&format!("\nscaling from 1 to {} threads:", r.threads));
         for sc in &r.scaling {
             out.push_str(&format!("  {} {:.2}x", sc.stage, sc.speedup));
+            if let (Some(a), Some(b)) = sc.cores {
+                out.push_str(&format!(" ({a:.2} -> {b:.2} cores)"));
+            }
         }
         out.push('\n');
     }
@@ -767,7 +833,10 @@ over a plain write and fsync of as many bytes, for checkpoint-load over reading 
 random-reads: 8-byte reads at random places of a 16 MiB table (a binary model's weights \
 and average, on huge pages like them) cut into one part per thread of the parallel run, the parts read in turn \
 with 1 thread; its scaling is about the most that memory-bound training can gain from \
-more threads on this machine.\n",
+more threads on this machine.\n\
+cores: the child process's user and system CPU time over its wall-clock time. `thr` counts \
+worker threads; ingest and score also run a reader thread (and ingest a writer), so with 1 \
+worker they keep more than one core busy, and their scaling is less than the gain in cores used.\n",
     );
     out
 }
@@ -806,6 +875,39 @@ mod tests {
         std::fs::remove_dir_all(&dir).unwrap();
     }
 
+    /// The CPU time `run_child` reports is the child's, from the kernel: a
+    /// child that spins accrues some, one that sleeps almost none, and neither
+    /// can keep more cores busy than the machine has. A failing child is an
+    /// error naming its command.
+    #[cfg(unix)]
+    #[test]
+    fn child_cpu_time_is_measured() {
+        let sh = Path::new("/bin/sh");
+        let spin = run_child(
+            sh,
+            &[
+                s("-c"),
+                s("i=0; while [ $i -lt 200000 ]; do i=$((i+1)); done"),
+            ],
+            false,
+        )
+        .unwrap();
+        let cpu = spin.cpu_seconds.expect("measured on unix");
+        let cores = std::thread::available_parallelism().map_or(1, |c| c.get()) as f64;
+        assert!(cpu > 0.0, "a spinning child used no CPU time");
+        assert!(spin.cores().unwrap() <= cores + 0.05, "{spin:?}");
+        let nap = run_child(sh, &[s("-c"), s("sleep 0.3")], false).unwrap();
+        assert!(nap.cpu_seconds.unwrap() < 0.15, "{nap:?}");
+        let printed = run_child(sh, &[s("-c"), s("echo hi")], true).unwrap();
+        assert_eq!(printed.stdout, b"hi\n");
+        let err = run_child(sh, &[s("-c"), s("echo nope >&2; exit 3")], false).unwrap_err();
+        let msg = err.to_string();
+        assert!(
+            msg.contains("exit status: 3") && msg.contains("nope"),
+            "{msg}"
+        );
+    }
+
     #[test]
     fn scaling_pairs_last_epochs() {
         let st = |stage: &str, threads, nnz: Option<f64>, bps: Option<f64>| StageResult {
@@ -818,6 +920,7 @@ mod tests {
             epoch: None,
             peak_rss_anon: None,
             ratio_to_limit: None,
+            cores: None,
         };
         let stages = vec![
             st("ingest", 1, None, Some(100.0)),
@@ -830,6 +933,7 @@ mod tests {
         let sc = scaling_of(&stages, 2);
         assert_eq!(sc.len(), 2);
         assert_eq!((sc[0].stage.as_str(), sc[0].speedup), ("ingest", 1.8));
+        assert_eq!(sc[0].cores, (None, None));
         assert_eq!((sc[1].stage.as_str(), sc[1].speedup), ("train-binary", 1.5));
         assert!(scaling_of(&stages, 1).is_empty());
     }

@@ -77,6 +77,13 @@ fn json_report_has_every_stage_and_keeps_files() {
         if std::path::Path::new("/proc/self/status").exists() {
             assert!(st["peak_rss_anon"].as_u64().unwrap() > 0);
         }
+        // The child's CPU time over its wall time: some work was done, and no
+        // more cores were busy than the machine has (from wait4, on unix).
+        if cfg!(unix) {
+            let cores = st["cores"].as_f64().unwrap();
+            let have = std::thread::available_parallelism().map_or(1, |c| c.get());
+            assert!(cores > 0.0 && cores <= have as f64 + 0.05, "{st}");
+        }
     }
     let scaled: Vec<&str> = r["scaling"]
         .as_array()
@@ -85,6 +92,16 @@ fn json_report_has_every_stage_and_keeps_files() {
         .map(|s| s["stage"].as_str().unwrap())
         .collect();
     assert_eq!(scaled, ["ingest", "random-reads", "train-binary", "score"]);
+    // Cores used at 1 and N threads travel with each child stage's scaling; the
+    // random-reads limit runs in the bench itself and has none.
+    for sc in r["scaling"].as_array().unwrap() {
+        let measured = sc["cores"].as_array().unwrap().iter().all(|c| c.is_f64());
+        assert_eq!(
+            measured,
+            cfg!(unix) && sc["stage"] != "random-reads",
+            "{sc}"
+        );
+    }
     // The random-reads limit: 1 and 2 threads, reads per second measured.
     let reads = stages(&r, "random-reads");
     assert_eq!(reads.len(), 2, "{reads:?}");
@@ -118,6 +135,7 @@ fn table_output_and_bad_options() {
     tamis(["bench", "--size", "100KB", "-j", "1", "--keep", s(&keep)])
         .ok()
         .stdout_has("x limit")
+        .stdout_has("cores")
         .stdout_has("train-6class");
     // A kept folder must be new or empty.
     tamis(["bench", "--size", "100KB", "-j", "1", "--keep", s(&keep)])
