@@ -13,6 +13,8 @@
 //!   own epoch timing, without validation);
 //! * **scoring** the raw input with the 6-class model, 1 and N threads, output
 //!   thrown away: MB/s;
+//! * **cores** kept busy by every child: its user and system CPU time, which
+//!   `wait4` returns when it is reaped, over its wall-clock time;
 //! * **peak anonymous memory** (`RssAnon`) of every child, sampled from
 //!   `/proc/PID/status` every [`SAMPLE_MS`] ms. `RssAnon` has no peak counter of
 //!   its own (`VmHWM` counts mapped file pages too, which are the page cache's,
@@ -120,8 +122,9 @@ impl StageResult {
         }
     }
 
-    /// A limit measured in this process (no child, so no memory or cores).
-    fn limit(stage: &str, threads: usize, secs: f64) -> StageResult {
+    /// A stage with its name, threads and seconds and nothing else measured;
+    /// callers fill in the rest (`..StageResult::bare(…)`).
+    fn bare(stage: &str, threads: usize, secs: f64) -> StageResult {
         StageResult {
             stage: stage.into(),
             threads,
@@ -263,7 +266,7 @@ pub fn scan(paths: &[PathBuf]) -> Result<(u64, f64, u64)> {
 }
 
 /// What [`run_child`] measured of one child process.
-#[derive(Debug, Clone, Default)]
+#[derive(Debug, Clone)]
 struct ChildRun {
     /// Wall-clock seconds from start to exit.
     seconds: f64,
@@ -477,7 +480,7 @@ pub fn run(opts: &BenchOptions, progress: &dyn Fn(&str)) -> Result<BenchReport> 
     stages.push(StageResult {
         bytes_per_second: Some(in_bps),
         ratio_to_limit: Some(1.0),
-        ..StageResult::limit("read-input", 1, in_secs)
+        ..StageResult::bare("read-input", 1, in_secs)
     });
 
     // Ingest: 6 classes with 1 and N threads, binary with N.
@@ -555,7 +558,7 @@ pub fn run(opts: &BenchOptions, progress: &dyn Fn(&str)) -> Result<BenchReport> 
     stages.push(StageResult {
         bytes_per_second: Some(sh_bps),
         ratio_to_limit: Some(1.0),
-        ..StageResult::limit("read-shards", 1, sh_secs)
+        ..StageResult::bare("read-shards", 1, sh_secs)
     });
     // Limit 3: random reads of a weight-sized table, 1 and n threads, each on
     // its own part: how far memory-latency-bound work (a training step) can
@@ -568,7 +571,7 @@ pub fn run(opts: &BenchOptions, progress: &dyn Fn(&str)) -> Result<BenchReport> 
         let (secs, reads) = random_reads(t, n);
         stages.push(StageResult {
             nnz_per_second: Some(reads as f64 / secs.max(1e-9)),
-            ..StageResult::limit("random-reads", t, secs)
+            ..StageResult::bare("random-reads", t, secs)
         });
     }
     let train_scan_secs = train_bytes as f64 / sh_bps;
@@ -611,7 +614,7 @@ pub fn run(opts: &BenchOptions, progress: &dyn Fn(&str)) -> Result<BenchReport> 
                 stages.push(StageResult {
                     bytes_per_second: Some(bytes as f64 / secs.max(1e-9)),
                     ratio_to_limit: Some(secs / limit.max(1e-9)),
-                    ..StageResult::limit(name, threads, secs)
+                    ..StageResult::bare(name, threads, secs)
                 });
             }
         }
@@ -623,7 +626,7 @@ pub fn run(opts: &BenchOptions, progress: &dyn Fn(&str)) -> Result<BenchReport> 
                 peak_rss_anon: run.peak_rss_anon,
                 ratio_to_limit: Some(secs / train_scan_secs.max(1e-9)),
                 cores: run.cores(),
-                ..StageResult::limit(stage, threads, secs)
+                ..StageResult::bare(stage, threads, secs)
             });
         }
     }
