@@ -94,6 +94,14 @@ pub struct StageResult {
     /// epoch). Thread counts name worker threads; this says what they cost.
     #[serde(default)]
     pub cores: Option<f64>,
+    /// CPUs the child process was confined to: `Some(1)` for the runs with one
+    /// thread on a machine with more than one CPU, so that their figure is one
+    /// core's and the scaling is from one core to N (ingest with one worker
+    /// thread also runs a reader and a writer thread, which would otherwise take
+    /// a second core); `None` when it could use every CPU, or for stages run
+    /// inside the bench process (the limits).
+    #[serde(default)]
+    pub cpus: Option<usize>,
 }
 
 impl StageResult {
@@ -119,6 +127,7 @@ impl StageResult {
             peak_rss_anon: run.peak_rss_anon,
             ratio_to_limit: Some(secs / limit_secs.max(1e-9)),
             cores: run.cores(),
+            cpus: run.cpus,
         }
     }
 
@@ -136,6 +145,7 @@ impl StageResult {
             peak_rss_anon: None,
             ratio_to_limit: None,
             cores: None,
+            cpus: None,
         }
     }
 }
@@ -270,6 +280,8 @@ pub fn scan(paths: &[PathBuf]) -> Result<(u64, f64, u64)> {
 struct ChildRun {
     /// Wall-clock seconds from start to exit.
     seconds: f64,
+    /// CPUs it was confined to, if any.
+    cpus: Option<usize>,
     /// User plus system CPU seconds of all its threads (from `wait4`).
     cpu_seconds: Option<f64>,
     /// Peak sampled `RssAnon`, bytes.
@@ -321,21 +333,72 @@ fn try_reap(child: &mut std::process::Child) -> std::io::Result<Option<(ExitStat
     Ok(child.try_wait()?.map(|s| (s, None)))
 }
 
+/// The first CPU this process may run on, as a set of one, when it may run on
+/// more than one (Linux); `None` elsewhere or when there is nothing to confine.
+#[cfg(target_os = "linux")]
+fn one_cpu_set() -> Option<libc::cpu_set_t> {
+    // SAFETY: `cpu_set_t` is plain data; `sched_getaffinity` writes at most
+    // `size_of::<cpu_set_t>()` bytes into `mine`, which outlives the call, and
+    // the CPU_* helpers index inside the set (CPU numbers below CPU_SETSIZE).
+    unsafe {
+        let mut mine: libc::cpu_set_t = std::mem::zeroed();
+        if libc::sched_getaffinity(0, std::mem::size_of::<libc::cpu_set_t>(), &mut mine) != 0
+            || libc::CPU_COUNT(&mine) < 2
+        {
+            return None;
+        }
+        let first = (0..libc::CPU_SETSIZE as usize).find(|&c| libc::CPU_ISSET(c, &mine))?;
+        let mut one: libc::cpu_set_t = std::mem::zeroed();
+        libc::CPU_SET(first, &mut one);
+        Some(one)
+    }
+}
+
+/// Confine the child `cmd` starts to one CPU, if the machine has more; returns
+/// whether it did.
+#[cfg(target_os = "linux")]
+fn confine_to_one_cpu(cmd: &mut Command) -> bool {
+    use std::os::unix::process::CommandExt;
+    let Some(set) = one_cpu_set() else {
+        return false;
+    };
+    // SAFETY: the closure runs in the child between fork and exec, where only
+    // async-signal-safe calls are allowed: it makes one system call on a set
+    // copied into it beforehand, and allocates nothing.
+    unsafe {
+        cmd.pre_exec(move || {
+            if libc::sched_setaffinity(0, std::mem::size_of::<libc::cpu_set_t>(), &set) == 0 {
+                Ok(())
+            } else {
+                Err(std::io::Error::last_os_error())
+            }
+        });
+    }
+    true
+}
+
+/// Elsewhere children are not confined.
+#[cfg(not(target_os = "linux"))]
+fn confine_to_one_cpu(_cmd: &mut Command) -> bool {
+    false
+}
+
 /// Run `exe args` with standard output captured (or thrown away), sampling its
-/// `RssAnon` and taking its CPU time when it exits.
-fn run_child(exe: &Path, args: &[String], capture: bool) -> Result<ChildRun> {
-    let start = Instant::now();
-    let mut child = Command::new(exe)
-        .args(args)
+/// `RssAnon` and taking its CPU time when it exits. With `one_cpu` the child
+/// may run on one CPU only (see [`StageResult::cpus`]).
+fn run_child(exe: &Path, args: &[String], capture: bool, one_cpu: bool) -> Result<ChildRun> {
+    let mut cmd = Command::new(exe);
+    cmd.args(args)
         .stdin(Stdio::null())
         .stdout(if capture {
             Stdio::piped()
         } else {
             Stdio::null()
         })
-        .stderr(Stdio::piped())
-        .spawn()
-        .at(exe)?;
+        .stderr(Stdio::piped());
+    let cpus = (one_cpu && confine_to_one_cpu(&mut cmd)).then_some(1);
+    let start = Instant::now();
+    let mut child = cmd.spawn().at(exe)?;
     let status_path = PathBuf::from(format!("/proc/{}/status", child.id()));
     // Drain the pipes on threads of their own, so a child never blocks on them.
     let mut out_pipe = child.stdout.take();
@@ -376,6 +439,7 @@ fn run_child(exe: &Path, args: &[String], capture: bool) -> Result<ChildRun> {
     }
     Ok(ChildRun {
         seconds: secs,
+        cpus,
         cpu_seconds,
         peak_rss_anon: peak.map(|kb| kb * 1024),
         stdout: out,
@@ -512,7 +576,12 @@ pub fn run(opts: &BenchOptions, progress: &dyn Fn(&str)) -> Result<BenchReport> 
         let stage = if binary { "ingest-binary" } else { "ingest" };
         progress(&format!("{stage}, {threads} thread(s)"));
         let out = ds(name);
-        let run = run_child(exe, &ingest_args(&out, threads, binary), false)?;
+        let run = run_child(
+            exe,
+            &ingest_args(&out, threads, binary),
+            false,
+            threads == 1,
+        )?;
         settle(&out)?;
         let m = Manifest::load(&out)?;
         rows = m.train_rows() + m.labels.iter().map(|l| l.validation_rows).sum::<u64>();
@@ -597,7 +666,7 @@ pub fn run(opts: &BenchOptions, progress: &dyn Fn(&str)) -> Result<BenchReport> 
             s("--threads"),
             threads.to_string(),
         ];
-        let run = run_child(exe, &args, true)?;
+        let run = run_child(exe, &args, true, threads == 1)?;
         let out = &run.stdout;
         let parsed: TrainStageOutput = serde_json::from_slice(out).map_err(|e| {
             Error::Invalid(format!(
@@ -614,6 +683,7 @@ pub fn run(opts: &BenchOptions, progress: &dyn Fn(&str)) -> Result<BenchReport> 
                 stages.push(StageResult {
                     bytes_per_second: Some(bytes as f64 / secs.max(1e-9)),
                     ratio_to_limit: Some(secs / limit.max(1e-9)),
+                    cpus: run.cpus,
                     ..StageResult::bare(name, threads, secs)
                 });
             }
@@ -626,6 +696,7 @@ pub fn run(opts: &BenchOptions, progress: &dyn Fn(&str)) -> Result<BenchReport> 
                 peak_rss_anon: run.peak_rss_anon,
                 ratio_to_limit: Some(secs / train_scan_secs.max(1e-9)),
                 cores: run.cores(),
+                cpus: run.cpus,
                 ..StageResult::bare(stage, threads, secs)
             });
         }
@@ -646,7 +717,7 @@ pub fn run(opts: &BenchOptions, progress: &dyn Fn(&str)) -> Result<BenchReport> 
             threads.to_string(),
             s("--quiet"),
         ];
-        let run = run_child(exe, &args, false)?;
+        let run = run_child(exe, &args, false, threads == 1)?;
         stages.push(StageResult::over_input(
             "score", threads, &run, in_bytes, rows, in_secs,
         ));
@@ -797,15 +868,26 @@ pub fn table(r: &BenchReport) -> String {
             .map_or_else(|| "unknown".to_string(), |l| format!("{l:.2}")),
     ));
     out.push_str(&format!(
-        "{:<16} {:>3} {:>5} {:>11} {:>12} {:>12} {:>9} {:>10} {:>6} {:>12}\n",
-        "stage", "thr", "epoch", "MB/s", "rows/s", "nnz/s", "secs", "x limit", "cores", "RssAnon"
+        "{:<16} {:>3} {:>4} {:>5} {:>11} {:>12} {:>12} {:>9} {:>10} {:>6} {:>12}\n",
+        "stage",
+        "thr",
+        "cpus",
+        "epoch",
+        "MB/s",
+        "rows/s",
+        "nnz/s",
+        "secs",
+        "x limit",
+        "cores",
+        "RssAnon"
     ));
     for st in &r.stages {
         let opt = |x: Option<f64>| x.map_or_else(|| "-".to_string(), si);
         out.push_str(&format!(
-            "{:<16} {:>3} {:>5} {:>11} {:>12} {:>12} {:>9.3} {:>10} {:>6} {:>12}\n",
+            "{:<16} {:>3} {:>4} {:>5} {:>11} {:>12} {:>12} {:>9.3} {:>10} {:>6} {:>12}\n",
             st.stage,
             st.threads,
+            st.cpus.map_or_else(|| "-".to_string(), |c| c.to_string()),
             st.epoch.map_or_else(|| "-".to_string(), |e| e.to_string()),
             st.bytes_per_second
                 .map_or_else(|| "-".to_string(), |b| format!("{:.1}", b / 1e6)),
@@ -820,7 +902,16 @@ pub fn table(r: &BenchReport) -> String {
         ));
     }
     if !r.scaling.is_empty() {
-        out.push_str(&format!("\nscaling from 1 to {} threads:", r.threads));
+        let confined = r.stages.iter().any(|st| st.cpus == Some(1));
+        out.push_str(&format!(
+            "\nscaling from 1 to {} threads{}:",
+            r.threads,
+            if confined {
+                " (1 thread on one CPU)"
+            } else {
+                ""
+            }
+        ));
         for sc in &r.scaling {
             out.push_str(&format!("  {} {:.2}x", sc.stage, sc.speedup));
             if let (Some(a), Some(b)) = sc.cores {
@@ -838,8 +929,8 @@ and average, on huge pages like them) cut into one part per thread of the parall
 with 1 thread; its scaling is about the most that memory-bound training can gain from \
 more threads on this machine.\n\
 cores: the child process's user and system CPU time over its wall-clock time. `thr` counts \
-worker threads; ingest and score also run a reader thread (and ingest a writer), so with 1 \
-worker they keep more than one core busy, and their scaling is less than the gain in cores used.\n",
+worker threads; ingest and score also run a reader thread (and ingest a writer), so the \
+runs with 1 thread are confined to one CPU (cpus 1) and the scaling is from one core to N.\n",
     );
     out
 }
@@ -893,22 +984,66 @@ mod tests {
                 s("i=0; while [ $i -lt 200000 ]; do i=$((i+1)); done"),
             ],
             false,
+            false,
         )
         .unwrap();
         let cpu = spin.cpu_seconds.expect("measured on unix");
         let cores = std::thread::available_parallelism().map_or(1, |c| c.get()) as f64;
         assert!(cpu > 0.0, "a spinning child used no CPU time");
         assert!(spin.cores().unwrap() <= cores + 0.05, "{spin:?}");
-        let nap = run_child(sh, &[s("-c"), s("sleep 0.3")], false).unwrap();
+        let nap = run_child(sh, &[s("-c"), s("sleep 0.3")], false, false).unwrap();
         assert!(nap.cpu_seconds.unwrap() < 0.15, "{nap:?}");
-        let printed = run_child(sh, &[s("-c"), s("echo hi")], true).unwrap();
+        let printed = run_child(sh, &[s("-c"), s("echo hi")], true, false).unwrap();
         assert_eq!(printed.stdout, b"hi\n");
-        let err = run_child(sh, &[s("-c"), s("echo nope >&2; exit 3")], false).unwrap_err();
+        let err = run_child(sh, &[s("-c"), s("echo nope >&2; exit 3")], false, false).unwrap_err();
         let msg = err.to_string();
         assert!(
             msg.contains("exit status: 3") && msg.contains("nope"),
             "{msg}"
         );
+    }
+
+    /// A child run with `one_cpu` may use one CPU only: the kernel lists one CPU
+    /// as allowed, and two busy processes under it keep at most one core busy.
+    #[cfg(target_os = "linux")]
+    #[test]
+    fn one_cpu_children_are_confined() {
+        let sh = Path::new("/bin/sh");
+        let allowed = |one_cpu| {
+            let r = run_child(
+                sh,
+                &[s("-c"), s("grep Cpus_allowed_list /proc/self/status")],
+                true,
+                one_cpu,
+            )
+            .unwrap();
+            let out = String::from_utf8(r.stdout).unwrap();
+            let list = out.split(':').nth(1).unwrap().trim().to_string();
+            (list, r.cpus)
+        };
+        let (free, free_cpus) = allowed(false);
+        assert_eq!(free_cpus, None);
+        if one_cpu_set().is_none() {
+            // One CPU only: nothing to confine.
+            assert_eq!(allowed(true).1, None);
+            return;
+        }
+        let (one, cpus) = allowed(true);
+        assert_eq!(cpus, Some(1));
+        assert!(
+            one.parse::<usize>().is_ok(),
+            "confined to {one:?}, free to {free:?}"
+        );
+        assert_ne!(one, free);
+        let spin = "i=0; while [ $i -lt 150000 ]; do i=$((i+1)); done";
+        let two = run_child(
+            sh,
+            &[s("-c"), format!("({spin}) & ({spin}) & wait")],
+            false,
+            true,
+        )
+        .unwrap();
+        assert!(two.cores().unwrap() <= 1.1, "{two:?}");
     }
 
     #[test]
@@ -924,6 +1059,7 @@ mod tests {
             peak_rss_anon: None,
             ratio_to_limit: None,
             cores: None,
+            cpus: None,
         };
         let stages = vec![
             st("ingest", 1, None, Some(100.0)),

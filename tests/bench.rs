@@ -85,6 +85,19 @@ fn json_report_has_every_stage_and_keeps_files() {
             assert!(cores > 0.0 && cores <= have as f64 + 0.05, "{st}");
         }
     }
+    // Every child stage with 1 thread ran on one CPU (on Linux, when the machine
+    // has more than one), those with 2 threads on every CPU.
+    let many_cpus = std::thread::available_parallelism().is_ok_and(|c| c.get() > 1);
+    for st in r["stages"].as_array().unwrap() {
+        let child = !["read-input", "read-shards", "random-reads"]
+            .contains(&st["stage"].as_str().unwrap());
+        let confined = st["cpus"] == 1;
+        let want = child && st["threads"] == 1 && cfg!(target_os = "linux") && many_cpus;
+        assert_eq!(confined, want, "{st}");
+        if confined {
+            assert!(st["cores"].as_f64().unwrap() <= 1.1, "{st}");
+        }
+    }
     let scaled: Vec<&str> = r["scaling"]
         .as_array()
         .unwrap()
@@ -136,6 +149,7 @@ fn table_output_and_bad_options() {
         .ok()
         .stdout_has("x limit")
         .stdout_has("cores")
+        .stdout_has("cpus")
         .stdout_has("train-6class");
     // A kept folder must be new or empty.
     tamis(["bench", "--size", "100KB", "-j", "1", "--keep", s(&keep)])
