@@ -89,8 +89,8 @@ fn json_report_has_every_stage_and_keeps_files() {
     // has more than one), those with 2 threads on every CPU.
     let many_cpus = std::thread::available_parallelism().is_ok_and(|c| c.get() > 1);
     for st in r["stages"].as_array().unwrap() {
-        let child = !["read-input", "read-shards", "random-reads"]
-            .contains(&st["stage"].as_str().unwrap());
+        let child =
+            !["read-input", "read-shards", "random-reads"].contains(&st["stage"].as_str().unwrap());
         let confined = st["cpus"] == 1;
         let want = child && st["threads"] == 1 && cfg!(target_os = "linux") && many_cpus;
         assert_eq!(confined, want, "{st}");
