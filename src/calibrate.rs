@@ -227,8 +227,14 @@ pub struct Calibration {
     pub target: Option<Target>,
     /// One threshold per model (`None`: the plain rule, margin 0 for a binary
     /// model, the highest score for one-vs-rest). A model whose class had no
-    /// threshold chosen keeps 0.
+    /// threshold chosen holds 0 here and is marked in [`Calibration::chosen`].
     pub thresholds: Option<Vec<f64>>,
+    /// Per model, whether its threshold was chosen for a target: a one-vs-rest
+    /// class without one competes by its score alone, as if uncalibrated.
+    /// Absent when every threshold was chosen (and in files written before
+    /// this field; older builds that ignore it apply the stored 0).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub chosen: Option<Vec<bool>>,
     /// Platt scaling per model (hinge and squared-hinge models).
     pub platt: Option<Vec<Platt>>,
     /// Validation rows the calibration was fitted on.
@@ -352,6 +358,10 @@ pub fn calibrate(
         Some(t) => t.to_vec(),
         None => vec![0.0; model.models()],
     };
+    // The thresholds chosen before stay chosen; this run adds its own.
+    let mut chosen: Vec<bool> = (0..model.models())
+        .map(|m| model.threshold_of(m).is_some())
+        .collect();
     let mut platts = Vec::new();
     for m in 0..model.models() {
         let (s, y) = rows.one_vs_rest(m);
@@ -375,6 +385,7 @@ pub fn calibrate(
             Some(t) if only.is_none_or(|o| o == m) => {
                 let c = choose(&r, t).expect("positives checked above");
                 thresholds[m] = c.threshold;
+                chosen[m] = true;
                 let k = c.counts;
                 Some(Point {
                     threshold: c.threshold,
@@ -421,6 +432,7 @@ pub fn calibrate(
         calibration: Calibration {
             target: target.or(model.meta.calibration.as_ref().and_then(|c| c.target)),
             thresholds: keep_thresholds.then_some(thresholds),
+            chosen: (keep_thresholds && chosen.contains(&false)).then_some(chosen),
             platt: platt_wanted.then_some(platts),
             rows: rows.rows() as u64,
             dataset_fingerprint: dataset_fingerprint.to_string(),

@@ -169,7 +169,7 @@ fn legend<'a, 'b: 'a>(chart: &mut Chart<'a, 'b>, pos: SeriesLabelPosition) -> Dr
 
 /// The operating point of model `m`: its stored threshold, else margin 0.
 fn threshold(model: &Model, m: usize) -> f64 {
-    model.thresholds().map_or(0.0, |t| t[m])
+    model.threshold_of(m).unwrap_or(0.0)
 }
 
 /// What the page needs.
@@ -205,8 +205,8 @@ fn curves(inp: &ReportInput<'_>) -> Vec<Curves> {
             let (s, y) = inp.rows.one_vs_rest(m);
             let r = Ranking::new(&s, &y);
             // Without a stored threshold a binary model is positive above 0, not at 0.
-            let c = match inp.model.thresholds() {
-                Some(t) => rank::counts_at(&s, &y, t[m]),
+            let c = match inp.model.threshold_of(m) {
+                Some(t) => rank::counts_at(&s, &y, t),
                 None => rank::counts_of(s.iter().map(|&x| x > 0.0), &y),
             };
             let point = match (c.false_positive_rate(), c.recall()) {
@@ -650,6 +650,9 @@ pub fn html(inp: &ReportInput<'_>) -> Result<String> {
     ];
     let decided: u64 = m.undecided.iter().sum();
     let rule = match model.thresholds() {
+        Some(_) if model.partly_thresholded() => {
+            "the stored thresholds (classes without one compete by their score)"
+        }
         Some(_) => "the stored thresholds",
         None if model.is_binary() => "margin 0",
         None => "the highest score",

@@ -242,6 +242,108 @@ fn one_vs_rest_thresholds_leave_rows_undecided() {
     );
 }
 
+/// Calibrating one class of a model that had no thresholds leaves the other
+/// classes without one: they compete by score alone, so no row is undecided,
+/// and the calibrated class wins a row only at or above its threshold.
+#[test]
+fn one_class_calibrated_alone_leaves_the_others_competing_by_score() {
+    let t = tmp();
+    let tsv = t.path().join("m.tsv");
+    synth_tsv(&tsv, 3000, 11);
+    let dir = t.path().join("m");
+    ingest(
+        &[&tsv],
+        &dir,
+        &["--log2-buckets", "18", "--validation", "0.3", "-q"],
+    )
+    .ok();
+    let model = t.path().join("m.tmm");
+    train(&dir, &model, &["--epochs", "3", "-q"]).ok();
+    // A strict target, so that some rows whose top score is spam's stay below
+    // its threshold.
+    let (o, rep) = calibrate_json(
+        &model,
+        &dir,
+        &["--positive", "spam", "--max-false-positive-rate", "0.001"],
+    );
+    o.ok();
+    let labels: Vec<String> = rep["models"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|m| m["label"].as_str().unwrap().to_string())
+        .collect();
+    let spam = labels.iter().position(|l| l == "spam").unwrap();
+    let cal = &model_meta(&model)["calibration"];
+    let chosen: Vec<bool> = cal["chosen"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|b| b.as_bool().unwrap())
+        .collect();
+    assert_eq!(chosen, (0..6).map(|c| c == spam).collect::<Vec<_>>());
+    let th = f(&cal["thresholds"][spam]);
+    // The rule recomputed on the validation rows: the highest score among spam
+    // (when at or above its threshold) and every other class.
+    let v = split_scores(&model, &dir, Split::Validation);
+    let (mut right, mut held_back, mut old_rule_undecided) = (0u64, 0u64, 0u64);
+    for (sc, truth) in &v {
+        let top = (0..6).max_by(|&a, &b| sc[a].total_cmp(&sc[b])).unwrap();
+        let pick = (0..6)
+            .filter(|&c| c != spam || sc[c] >= th)
+            .max_by(|&a, &b| sc[a].total_cmp(&sc[b]))
+            .expect("a class without a threshold always competes");
+        right += (labels[pick] == *truth) as u64;
+        held_back += (top == spam && pick != spam) as u64;
+        // The rule before: the other classes held to threshold 0.
+        old_rule_undecided += (0..6).all(|c| sc[c] < if c == spam { th } else { 0.0 }) as u64;
+    }
+    assert!(held_back > 0, "no row exercised the spam threshold");
+    assert!(
+        old_rule_undecided > 0,
+        "no row would have been undecided under threshold 0"
+    );
+    let m = eval_json(&model, &[s(&dir)], &[]);
+    let undecided: u64 = m["undecided"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|x| x.as_u64().unwrap())
+        .sum();
+    assert_eq!(undecided, 0);
+    assert_eq!(m["rows"], v.len() as u64);
+    let acc = right as f64 / v.len() as f64;
+    assert!(
+        (f(&m["accuracy"]) - acc).abs() < 1e-12,
+        "{} vs {acc}",
+        m["accuracy"]
+    );
+    // Only spam's threshold is reported; the others are null.
+    for c in 0..6 {
+        assert_eq!(
+            m["thresholds"][c].is_null(),
+            c != spam,
+            "{}",
+            m["thresholds"]
+        );
+    }
+    assert_eq!(f(&m["thresholds"][spam]), th);
+    // A second calibration of another class keeps spam's threshold and marks
+    // both as chosen.
+    let (o, _) = calibrate_json(
+        &model,
+        &dir,
+        &["--positive", "schedule", "--min-precision", "0.9"],
+    );
+    o.ok();
+    let cal = &model_meta(&model)["calibration"];
+    let sched = labels.iter().position(|l| l == "schedule").unwrap();
+    for c in 0..6 {
+        assert_eq!(cal["chosen"][c], c == spam || c == sched, "{cal}");
+    }
+    assert_eq!(f(&cal["thresholds"][spam]), th);
+}
+
 #[test]
 fn an_unmeetable_target_shows_the_closest_point_and_changes_nothing() {
     let t = tmp();
@@ -479,6 +581,16 @@ fn calibration_is_an_optional_field_of_the_same_format() {
     let e = m.save(&t.path().join("bad.tmm")).unwrap_err();
     assert!(e.to_string().contains("2 thresholds"), "{e}");
     m.meta.calibration.as_mut().unwrap().thresholds = Some(vec![f64::NAN]);
+    assert!(m.save(&t.path().join("bad.tmm")).is_err());
+    // A full calibration writes no `chosen` flags; flags that do not fit the
+    // model are refused.
+    assert!(meta["calibration"].get("chosen").is_none());
+    m.meta.calibration.as_mut().unwrap().thresholds = Some(vec![1.0]);
+    m.meta.calibration.as_mut().unwrap().chosen = Some(vec![true, false]);
+    let e = m.save(&t.path().join("bad.tmm")).unwrap_err();
+    assert!(e.to_string().contains("2 chosen flags"), "{e}");
+    m.meta.calibration.as_mut().unwrap().thresholds = None;
+    m.meta.calibration.as_mut().unwrap().chosen = Some(vec![true]);
     assert!(m.save(&t.path().join("bad.tmm")).is_err());
 }
 

@@ -104,7 +104,7 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
     });
     match calibrated {
         Ok(_) => outln!(
-            "   the other classes keep margin 0 as their threshold; a message that clears none is ?undecided: route it to a person"
+            "   a message is spam only at or above that threshold; the other classes have none and take the rest by highest score"
         ),
         // A tiny demo (`--rows`) can leave a class out of the validation split;
         // the rest of the demo still runs, without a stored threshold.

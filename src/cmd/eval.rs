@@ -145,7 +145,14 @@ pub fn print(m: &Metrics, out: &mut impl Write) -> std::io::Result<()> {
         writeln!(out, "ECE        {:>12}", opt(m.expected_calibration_error))?;
     }
     let at = match &m.thresholds {
-        Some(t) if t.len() == 1 => format!("at the stored threshold {:.6}", t[0]),
+        Some(t) if t.len() == 1 => match t[0] {
+            Some(t) => format!("at the stored threshold {t:.6}"),
+            None => "at margin 0".into(),
+        },
+        Some(t) if t.contains(&None) => {
+            "at the stored thresholds, classes without one by highest score (means over classes)"
+                .into()
+        }
         Some(_) => "at the stored per-class thresholds (means over classes)".into(),
         None if m.per_class.len() == 2 && m.confusion_labels.len() == 2 => "at margin 0".into(),
         None => "at the highest score (means over classes)".into(),

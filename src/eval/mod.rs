@@ -233,8 +233,10 @@ pub struct Metrics {
     pub recall: f64,
     /// False-positive rate of the positive class at the model's decisions.
     pub false_positive_rate: f64,
-    /// The stored thresholds, one per model; `null` when none is stored.
-    pub thresholds: Option<Vec<f64>>,
+    /// The stored thresholds, one per model; `null` when none is stored, and
+    /// `null` in place of a class's threshold when a partial calibration left
+    /// that class without one (it then competes by its score alone).
+    pub thresholds: Option<Vec<Option<f64>>>,
 }
 
 /// Scores of every model for every row of a split, with the truth: all that
@@ -499,7 +501,9 @@ pub fn metrics(model: &Model, rows: &ScoredRows, labels: &[String], skipped: u64
         precision,
         recall,
         false_positive_rate: fpr,
-        thresholds: model.thresholds().map(<[f64]>::to_vec),
+        thresholds: model
+            .thresholds()
+            .map(|t| (0..t.len()).map(|m| model.threshold_of(m)).collect()),
     }
 }
 

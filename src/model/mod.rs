@@ -298,23 +298,42 @@ impl Model {
             .and_then(|c| c.thresholds.as_deref())
     }
 
+    /// The threshold chosen for model `m` by `tamis calibrate`, if one was:
+    /// `None` without thresholds, and for a one-vs-rest class left out of a
+    /// calibration of other classes (see [`Calibration::chosen`]).
+    pub fn threshold_of(&self, m: usize) -> Option<f64> {
+        let c = self.meta.calibration.as_ref()?;
+        let t = c.thresholds.as_ref()?;
+        if c.chosen.as_ref().is_some_and(|k| !k[m]) {
+            return None;
+        }
+        Some(t[m])
+    }
+
+    /// Whether some models have a chosen threshold and others not (a partial
+    /// calibration of a one-vs-rest model).
+    pub fn partly_thresholded(&self) -> bool {
+        let c = (0..self.models()).map(|m| self.threshold_of(m).is_some());
+        c.clone().any(|x| x) && c.clone().any(|x| !x)
+    }
+
     /// The decision for the scores of every model. Binary: positive when the
     /// score is `≥` the stored threshold (`> 0` without one). One-vs-rest
     /// without thresholds: the highest score. With thresholds: the highest
-    /// score among the classes whose score is `≥` their threshold, or
-    /// [`Decision::Undecided`] when none is.
+    /// score among the classes whose score is `≥` their threshold, or whose
+    /// class has no threshold chosen, or [`Decision::Undecided`] when there
+    /// are none (only when every class has a threshold).
     pub fn decide(&self, scores: &[f64]) -> Decision {
-        let t = self.thresholds();
         if self.is_binary() {
-            let pos = match t {
-                Some(t) => scores[0] >= t[0],
+            let pos = match self.threshold_of(0) {
+                Some(t) => scores[0] >= t,
                 None => scores[0] > 0.0,
             };
             return Decision::Class(pos as usize);
         }
         let mut best: Option<usize> = None;
         for (c, &s) in scores.iter().enumerate() {
-            if t.is_some_and(|t| s < t[c]) {
+            if self.threshold_of(c).is_some_and(|t| s < t) {
                 continue;
             }
             if best.is_none_or(|b| s > scores[b]) {
@@ -393,10 +412,16 @@ impl Model {
         if let Some(c) = &self.meta.calibration {
             let n = c.thresholds.as_ref().map_or(m, |t| t.len());
             let k = c.platt.as_ref().map_or(m, |p| p.len());
-            if n != m || k != m {
+            let h = c.chosen.as_ref().map_or(m, |h| h.len());
+            if n != m || k != m || h != m {
                 return Err(bad(format!(
-                    "calibration holds {n} thresholds and {k} Platt pairs for {m} models"
+                    "calibration holds {n} thresholds, {h} chosen flags and {k} Platt pairs for {m} models"
                 )));
+            }
+            if c.chosen.is_some() && c.thresholds.is_none() {
+                return Err(bad(
+                    "calibration marks chosen thresholds but holds none".into()
+                ));
             }
             let finite = c.thresholds.iter().flatten().all(|t| t.is_finite())
                 && c.platt
