@@ -14,7 +14,10 @@
 //! * **scoring** the raw input with the 6-class model, 1 and N threads, output
 //!   thrown away: MB/s;
 //! * **cores** kept busy by every child: its user and system CPU time, which
-//!   `wait4` returns when it is reaped, over its wall-clock time;
+//!   `wait4` returns when it is reaped, over its wall-clock time; every child
+//!   run with 1 thread is confined to one CPU (Linux), so that the scaling is
+//!   from one core to N even for stages that run helper threads beside their
+//!   workers;
 //! * **peak anonymous memory** (`RssAnon`) of every child, sampled from
 //!   `/proc/PID/status` every [`SAMPLE_MS`] ms. `RssAnon` has no peak counter of
 //!   its own (`VmHWM` counts mapped file pages too, which are the page cache's,
