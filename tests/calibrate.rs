@@ -9,6 +9,7 @@ mod common;
 
 use common::*;
 use serde_json::Value;
+use std::path::{Path, PathBuf};
 use tamis::dataset::Split;
 
 fn f(v: &Value) -> f64 {
@@ -109,28 +110,40 @@ fn each_target_is_met_with_the_best_other_side() {
     }
 }
 
-#[test]
-fn one_vs_rest_thresholds_leave_rows_undecided() {
-    let t = tmp();
-    let tsv = t.path().join("m.tsv");
-    synth_tsv(&tsv, 3000, 9);
-    let dir = t.path().join("m");
+/// Generated messages of six classes (3,000 rows, `seed`), ingested with a 30%
+/// validation split and trained for 3 epochs: the input, dataset and model.
+fn six_class_model(work: &Path, seed: u64) -> (PathBuf, PathBuf, PathBuf) {
+    let tsv = work.join("m.tsv");
+    synth_tsv(&tsv, 3000, seed);
+    let dir = work.join("m");
     ingest(
         &[&tsv],
         &dir,
         &["--log2-buckets", "18", "--validation", "0.3", "-q"],
     )
     .ok();
-    let model = t.path().join("m.tmm");
+    let model = work.join("m.tmm");
     train(&dir, &model, &["--epochs", "3", "-q"]).ok();
-    let (o, rep) = calibrate_json(&model, &dir, &["--min-precision", "0.99"]);
-    o.ok();
-    let labels: Vec<String> = rep["models"]
+    (tsv, dir, model)
+}
+
+/// The class of each model, in model order, from a calibration report.
+fn report_labels(rep: &Value) -> Vec<String> {
+    rep["models"]
         .as_array()
         .unwrap()
         .iter()
         .map(|m| m["label"].as_str().unwrap().to_string())
-        .collect();
+        .collect()
+}
+
+#[test]
+fn one_vs_rest_thresholds_leave_rows_undecided() {
+    let t = tmp();
+    let (tsv, dir, model) = six_class_model(t.path(), 9);
+    let (o, rep) = calibrate_json(&model, &dir, &["--min-precision", "0.99"]);
+    o.ok();
+    let labels = report_labels(&rep);
     assert_eq!(labels.len(), 6);
     let th: Vec<f64> = model_meta(&model)["calibration"]["thresholds"]
         .as_array()
@@ -248,17 +261,7 @@ fn one_vs_rest_thresholds_leave_rows_undecided() {
 #[test]
 fn one_class_calibrated_alone_leaves_the_others_competing_by_score() {
     let t = tmp();
-    let tsv = t.path().join("m.tsv");
-    synth_tsv(&tsv, 3000, 11);
-    let dir = t.path().join("m");
-    ingest(
-        &[&tsv],
-        &dir,
-        &["--log2-buckets", "18", "--validation", "0.3", "-q"],
-    )
-    .ok();
-    let model = t.path().join("m.tmm");
-    train(&dir, &model, &["--epochs", "3", "-q"]).ok();
+    let (_, dir, model) = six_class_model(t.path(), 11);
     // A strict target, so that some rows whose top score is spam's stay below
     // its threshold.
     let (o, rep) = calibrate_json(
@@ -267,12 +270,7 @@ fn one_class_calibrated_alone_leaves_the_others_competing_by_score() {
         &["--positive", "spam", "--max-false-positive-rate", "0.001"],
     );
     o.ok();
-    let labels: Vec<String> = rep["models"]
-        .as_array()
-        .unwrap()
-        .iter()
-        .map(|m| m["label"].as_str().unwrap().to_string())
-        .collect();
+    let labels = report_labels(&rep);
     let spam = labels.iter().position(|l| l == "spam").unwrap();
     let cal = &model_meta(&model)["calibration"];
     let chosen: Vec<bool> = cal["chosen"]
