@@ -479,6 +479,54 @@ impl Drop for Workdir {
     }
 }
 
+/// Free disk the bench needs per byte of `--size` at its peak: the input and
+/// two datasets of the same messages (6 classes with 1 and with N threads),
+/// each about 2.2 times the input at the default settings, plus room for the
+/// models and checkpoints.
+pub const ROOM_PER_INPUT_BYTE: f64 = 5.5;
+
+/// Bytes an unprivileged process may still write on the file system holding
+/// `path` (or its nearest existing ancestor); `None` where that is unknown.
+#[cfg(unix)]
+pub fn free_bytes(path: &Path) -> Option<u64> {
+    use std::os::unix::ffi::OsStrExt;
+    let existing = path.ancestors().find(|p| p.exists())?;
+    let name = std::ffi::CString::new(existing.as_os_str().as_bytes()).ok()?;
+    // SAFETY: `statvfs` is plain data the call fills in; `name` is a
+    // NUL-terminated path that outlives the call.
+    let mut st: libc::statvfs = unsafe { std::mem::zeroed() };
+    if unsafe { libc::statvfs(name.as_ptr(), &mut st) } != 0 {
+        return None;
+    }
+    Some(st.f_bavail as u64 * st.f_frsize as u64)
+}
+
+/// Elsewhere free space is not known.
+#[cfg(not(unix))]
+pub fn free_bytes(_path: &Path) -> Option<u64> {
+    None
+}
+
+/// Refuse to start a bench of `size` bytes in `dir` when `free` bytes cannot
+/// hold it (see [`ROOM_PER_INPUT_BYTE`]), rather than fill the disk part-way.
+fn check_room(dir: &Path, size: u64, free: Option<u64>) -> Result<()> {
+    let need = (size as f64 * ROOM_PER_INPUT_BYTE) as u64;
+    match free {
+        Some(free) if free < need => Err(Error::Insufficient {
+            path: dir.to_path_buf(),
+            what: format!(
+                "a bench of --size {} needs about {} of free disk at its peak (the input and two \
+                 datasets of it), and only {} is free there: choose a smaller --size, or --keep \
+                 a folder on a larger disk",
+                crate::util::bytes(size),
+                crate::util::bytes(need),
+                crate::util::bytes(free)
+            ),
+        }),
+        _ => Ok(()),
+    }
+}
+
 fn shard_files(dir: &Path, m: &Manifest, train_only: bool) -> Vec<PathBuf> {
     m.shards
         .iter()
@@ -510,6 +558,7 @@ pub fn run(opts: &BenchOptions, progress: &dyn Fn(&str)) -> Result<BenchReport> 
             path.display()
         )));
     }
+    check_room(&path, opts.size, free_bytes(&path))?;
     std::fs::create_dir_all(&path).at(&path)?;
     let work = Workdir { path, keep };
     let dir = &work.path;
@@ -1047,6 +1096,39 @@ mod tests {
         )
         .unwrap();
         assert!(two.cores().unwrap() <= 1.1, "{two:?}");
+    }
+
+    /// Free space as the kernel reports it, checked against coreutils `df`
+    /// (`--output=avail -B1`, the same `statvfs` figure) where `df` is there;
+    /// a bench too large for it is refused before anything is written.
+    #[cfg(unix)]
+    #[test]
+    fn free_space_is_checked_before_starting() {
+        let dir = std::env::temp_dir();
+        let free = free_bytes(&dir.join("not/yet/made")).expect("statvfs works here");
+        assert!(free > 0);
+        if let Ok(out) = std::process::Command::new("df")
+            .args(["--output=avail", "-B1"])
+            .arg(&dir)
+            .output()
+        {
+            if out.status.success() {
+                let text = String::from_utf8_lossy(&out.stdout);
+                let df: u64 = text.lines().nth(1).unwrap().trim().parse().unwrap();
+                // Other processes write meanwhile: equal within 1 GiB.
+                assert!(free.abs_diff(df) < 1 << 30, "statvfs {free}, df {df}");
+            }
+        }
+        let here = Path::new("/somewhere");
+        check_room(here, 1 << 30, Some(6 << 30)).unwrap();
+        check_room(here, 1 << 30, None).unwrap();
+        let e = check_room(here, 1 << 30, Some(5 << 30))
+            .unwrap_err()
+            .to_string();
+        assert!(
+            e.contains("/somewhere") && e.contains("5.5 GiB") && e.contains("only 5.0 GiB is free"),
+            "{e}"
+        );
     }
 
     #[test]

@@ -155,6 +155,12 @@ fn table_output_and_bad_options() {
     tamis(["bench", "--size", "100KB", "-j", "1", "--keep", s(&keep)])
         .fails()
         .stderr_has("new or empty");
+    // A bench larger than the free disk is refused before anything is written.
+    let huge = t.path().join("huge");
+    tamis(["bench", "--size", "100TB", "--keep", s(&huge)])
+        .fails()
+        .stderr_has("of free disk at its peak");
+    assert!(!huge.exists());
     // A size that does not parse is a usage error (exit 2).
     let bad = tamis(["bench", "--size", "1XB"]);
     assert_eq!(bad.code, Some(2), "{}", bad.stderr);
