@@ -23,6 +23,10 @@
 //!   its own (`VmHWM` counts mapped file pages too, which are the page cache's,
 //!   not ours), so a peak shorter than one sampling period can be missed.
 //!
+//! As a reference from outside tamis, coreutils `wc -w` counts the words of the
+//! same input (stage [`WC_STAGE`], where `wc` can be run), and the report gives
+//! ingest's speed with N threads over its speed.
+//!
 //! The limits are plain sequential reads of the same bytes, in this process:
 //! the input file (for ingest and scoring) and the shard files (for training,
 //! as time per epoch against the time to read the training shards once).
@@ -192,6 +196,10 @@ pub struct BenchReport {
     pub stages: Vec<StageResult>,
     /// Speed-ups from 1 to N threads.
     pub scaling: Vec<Scaling>,
+    /// Ingest's speed with N threads over the speed of coreutils `wc -w`
+    /// counting the words of the same input (`None` where `wc` could not run).
+    #[serde(default)]
+    pub ingest_over_wc: Option<f64>,
 }
 
 /// What a child training stage prints (one JSON object on standard output).
@@ -598,6 +606,19 @@ pub fn run(opts: &BenchOptions, progress: &dyn Fn(&str)) -> Result<BenchReport> 
         ratio_to_limit: Some(1.0),
         ..StageResult::bare("read-input", 1, in_secs)
     });
+    // A reference from outside tamis: coreutils `wc -w` counting the words of
+    // the same input (left out where `wc` cannot be run).
+    progress("counting the words with wc -w (reference)");
+    if let Some(run) = words_counted(&input) {
+        stages.push(StageResult {
+            bytes_per_second: Some(in_bytes as f64 / run.seconds),
+            ratio_to_limit: Some(run.seconds / in_secs.max(1e-9)),
+            peak_rss_anon: run.peak_rss_anon,
+            cores: run.cores(),
+            cpus: run.cpus,
+            ..StageResult::bare(WC_STAGE, 1, run.seconds)
+        });
+    }
 
     // Ingest: 6 classes with 1 and N threads, binary with N.
     let ds = |name: &str| dir.join(name);
@@ -776,6 +797,7 @@ pub fn run(opts: &BenchOptions, progress: &dyn Fn(&str)) -> Result<BenchReport> 
     }
 
     let scaling = scaling_of(&stages, n);
+    let ingest_over_wc = ingest_over_wc(&stages, n);
     Ok(BenchReport {
         input_bytes: in_bytes,
         rows,
@@ -788,7 +810,34 @@ pub fn run(opts: &BenchOptions, progress: &dyn Fn(&str)) -> Result<BenchReport> 
         dir: work.path.clone(),
         stages,
         scaling,
+        ingest_over_wc,
     })
+}
+
+/// The stage name of the `wc -w` reference.
+pub const WC_STAGE: &str = "wc-words";
+
+/// Run `wc -w` on `input`: the run, when `wc` ran and printed a word count.
+fn words_counted(input: &Path) -> Option<ChildRun> {
+    let run = run_child(
+        Path::new("wc"),
+        &[s("-w"), input.display().to_string()],
+        true,
+        true,
+    )
+    .ok()?;
+    let out = String::from_utf8_lossy(&run.stdout);
+    out.split_whitespace().next()?.parse::<u64>().ok()?;
+    Some(run)
+}
+
+/// Ingest's speed with `n` threads over the speed of `wc -w` on the same input.
+fn ingest_over_wc(stages: &[StageResult], n: usize) -> Option<f64> {
+    let wc = stages.iter().find(|s| s.stage == WC_STAGE)?;
+    let ingest = stages
+        .iter()
+        .find(|s| s.stage == "ingest" && s.threads == n)?;
+    Some(wc.seconds / ingest.seconds)
 }
 
 /// Words of the table [`random_reads`] reads: 16 MiB, a binary model's `v`
@@ -972,6 +1021,12 @@ pub fn table(r: &BenchReport) -> String {
         }
         out.push('\n');
     }
+    if let Some(x) = r.ingest_over_wc {
+        out.push_str(&format!(
+            "ingest with {} thread(s) runs at {x:.2}x the speed of `wc -w` on the same input\n",
+            r.threads
+        ));
+    }
     out.push_str(
         "\nx limit: the stage's time over a plain sequential read of the same bytes \
 (input for ingest and score, training shards for an epoch); for checkpoint-write, \
@@ -980,6 +1035,8 @@ random-reads: 8-byte reads at random places of a 16 MiB table (a binary model's 
 and average, on huge pages like them) cut into one part per thread of the parallel run, the parts read in turn \
 with 1 thread; its scaling is about the most that memory-bound training can gain from \
 more threads on this machine.\n\
+wc-words: coreutils `wc -w` counting the words of the input, a reference from outside tamis \
+(run as it is installed, in the caller's locale).\n\
 cores: the child process's user and system CPU time over its wall-clock time. `thr` counts \
 worker threads; ingest and score also run a reader thread (and ingest a writer), so the \
 runs with 1 thread are confined to one CPU (cpus 1) and the scaling is from one core to N.\n",

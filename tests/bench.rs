@@ -53,6 +53,25 @@ fn json_report_has_every_stage_and_keeps_files() {
     ] {
         assert_eq!(stages(&r, name).len(), want, "{name}");
     }
+    // The `wc -w` reference, where coreutils' `wc` runs: one stage, and
+    // ingest's speed with 2 threads over its speed.
+    let wc_runs = std::process::Command::new("wc")
+        .arg("-w")
+        .arg("Cargo.toml")
+        .output()
+        .is_ok_and(|o| o.status.success());
+    let wc = stages(&r, "wc-words");
+    if wc_runs {
+        assert_eq!(wc.len(), 1);
+        let ingest2 = stages(&r, "ingest")
+            .into_iter()
+            .find(|s| s["threads"] == 2)
+            .unwrap();
+        let want = wc[0]["seconds"].as_f64().unwrap() / ingest2["seconds"].as_f64().unwrap();
+        assert!((r["ingest_over_wc"].as_f64().unwrap() - want).abs() < 1e-12);
+    } else {
+        assert!(wc.is_empty() && r["ingest_over_wc"].is_null());
+    }
     // The checkpoint of 6 models over 2^20 buckets: 16 bytes per bucket and
     // model, so its bytes per second times its seconds is at least that.
     for st in stages(&r, "checkpoint-write")
