@@ -704,3 +704,97 @@ fn the_report_has_one_svg_per_plot() {
     check_report(&page, &m, &strings(&m["confusion_labels"]));
     assert!(!std::fs::read_to_string(&page).unwrap().contains("<b>&co"));
 }
+
+/// `tamis ARGS...` with its address space limited to 2 GB, so that a run
+/// that allocates without bound fails at once instead of taking the machine's
+/// memory.
+fn tamis_limited(args: &[&str]) -> Out {
+    let o = std::process::Command::new("sh")
+        .arg("-c")
+        .arg("ulimit -v 2000000 && exec \"$0\" \"$@\"")
+        .arg(bin())
+        .args(args)
+        .env_remove("RUST_BACKTRACE")
+        .stdin(std::process::Stdio::null())
+        .output()
+        .expect("run tamis under sh");
+    Out {
+        args: args.iter().map(|a| a.to_string()).collect(),
+        code: o.status.code(),
+        stdout: String::from_utf8_lossy(&o.stdout).into_owned(),
+        stderr: String::from_utf8_lossy(&o.stderr).into_owned(),
+    }
+}
+
+#[test]
+fn scores_that_overflow_are_refused_naming_where() {
+    // Invented ferry-inbox records with two numeric fields: `links` goes with
+    // spam, `crossings` with the rest. Raw counts keep the values as given.
+    let t = tmp();
+    let mut text = String::new();
+    for i in 0..400 {
+        let spam = i % 2 == 0;
+        let (label, words, links, crossings) = if spam {
+            ("spam", "claim your prize now", 1 + i % 3, 0)
+        } else {
+            ("other", "when does the Osk ferry leave", 0, 1 + i % 3)
+        };
+        text.push_str(&format!(
+            "{{\"label\":\"{label}\",\"text\":\"{words} w{}\",\"links\":{links},\"crossings\":{crossings}}}\n",
+            i % 37
+        ));
+    }
+    let input = t.path().join("inbox.jsonl");
+    std::fs::write(&input, &text).unwrap();
+    let fields = [
+        "--format",
+        "jsonl",
+        "--numeric-field",
+        "links",
+        "--numeric-field",
+        "crossings",
+        "--positive",
+        "spam",
+        "--raw-counts",
+        "--log2-buckets",
+        "12",
+        "-q",
+    ];
+    let dir = t.path().join("d");
+    ingest(&[&input], &dir, &fields).ok();
+    let model = t.path().join("d.tmm");
+    train(&dir, &model, &["-q"]).ok();
+    // Finite values near the top of f32 overflow the products w·x: +inf from
+    // one field and −inf from the other make the score NaN.
+    let big = t.path().join("big.jsonl");
+    std::fs::write(
+        &big,
+        "{\"label\":\"spam\",\"text\":\"claim your prize\",\"links\":1,\"crossings\":0}\n\
+         {\"label\":\"other\",\"text\":\"ferry\",\"links\":3.4e38,\"crossings\":3.4e38}\n",
+    )
+    .unwrap();
+    tamis_limited(&["eval", s(&model), s(&big)])
+        .fails()
+        .stderr_has(&format!("{}:2", big.display()))
+        .stderr_has("not finite");
+    // The same rows in a dataset's validation split.
+    let ds = t.path().join("big");
+    let mut a = fields.to_vec();
+    a.extend_from_slice(&["--validation", "0.9999"]);
+    ingest(&[&big], &ds, &a).ok();
+    let shard = manifest(&ds)
+        .shards
+        .iter()
+        .find(|e| e.split == tamis::dataset::Split::Validation)
+        .map(|e| ds.join(&e.file))
+        .unwrap();
+    for cmd in [
+        vec!["eval", s(&model), s(&ds)],
+        vec!["calibrate", s(&model), s(&ds), "--min-recall", "0.5"],
+    ] {
+        tamis_limited(&cmd)
+            .fails()
+            .stderr_has(&shard.display().to_string())
+            .stderr_has("not finite");
+    }
+}

@@ -73,8 +73,21 @@ pub fn scored_split(model: &Model, dir: &Path, which: Which) -> anyhow::Result<S
             dir.display()
         );
     }
-    Ok(eval::score_shards(&shards, model, positive))
+    let rows = eval::score_shards(&shards, model, positive);
+    if let Some(mut i) = rows.first_non_finite() {
+        for sh in &shards {
+            if i < sh.rows() {
+                bail!("{}: row {}: {NOT_FINITE}", sh.path().display(), i + 1);
+            }
+            i -= sh.rows();
+        }
+    }
+    Ok(rows)
 }
+
+/// Why a record with a score that is not finite cannot be evaluated.
+const NOT_FINITE: &str =
+    "the model's score is not finite (a value too large for the weights); it cannot be evaluated";
 
 fn on_inputs(model: &Model, a: &Args, threads: usize) -> anyhow::Result<(ScoredRows, u64)> {
     let spec = a.fields.spec(model, 1 << 20);
@@ -91,7 +104,19 @@ fn on_inputs(model: &Model, a: &Args, threads: usize) -> anyhow::Result<(ScoredR
         |outs| {
             for o in outs {
                 match o {
-                    Outcome::Scored { truth, scores, .. } => {
+                    Outcome::Scored {
+                        input,
+                        line,
+                        truth,
+                        scores,
+                        ..
+                    } => {
+                        if scores.iter().any(|x| !x.is_finite()) {
+                            return Err(tamis::Error::Invalid(format!(
+                                "{}:{line}: {NOT_FINITE}",
+                                a.data[input]
+                            )));
+                        }
                         let t = truth.unwrap_or_default();
                         let class = match &model.meta.positive {
                             Some(p) => Some((t == *p) as usize),

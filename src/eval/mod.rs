@@ -280,6 +280,15 @@ impl ScoredRows {
         &self.scores[i * self.models..(i + 1) * self.models]
     }
 
+    /// The first row with a score that is not finite (a value so large that
+    /// `w·x` overflowed), if any: such rows have no rank and no probability.
+    pub fn first_non_finite(&self) -> Option<usize> {
+        self.scores
+            .iter()
+            .position(|x| !x.is_finite())
+            .map(|i| i / self.models.max(1))
+    }
+
     /// Model `m`'s scores and whether each row is its class (binary: the
     /// positive class), one-vs-rest.
     pub fn one_vs_rest(&self, m: usize) -> (Vec<f64>, Vec<bool>) {

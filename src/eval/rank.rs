@@ -110,7 +110,9 @@ impl Ranking {
         let mut i = 0;
         while i < v.len() {
             let s = v[i].0;
-            while i < v.len() && v[i].0 == s {
+            // `total_cmp`, not `==`: a NaN score (which callers should refuse)
+            // must still end the group, or this loop would never advance.
+            while i < v.len() && v[i].0.total_cmp(&s).is_eq() {
                 if v[i].1 {
                     tp += 1;
                 } else {
