@@ -1583,6 +1583,26 @@ fn append_to_a_damaged_dataset_is_refused() {
     assert!(contents(&out) == before);
 }
 
+/// A manifest whose checksum is right but whose `next_shard` does not lie
+/// above the files it lists (edited by hand and resealed) would make an
+/// append write its new shards under the names of existing ones, replacing
+/// rows already ingested. The append is refused and nothing changes.
+#[test]
+fn append_never_replaces_files_the_manifest_lists() {
+    let t = tmp();
+    let out = t.path().join("d");
+    ingest(&[&fixture("inbox.tsv")], &out, &["-q"]).ok();
+    let mut m = manifest(&out);
+    m.next_shard = 0;
+    m.store(&out).unwrap();
+    let before = contents(&out);
+    ingest(&[&fixture("inbox.tsv")], &out, &["--append", "-q"])
+        .fails()
+        .stderr_has("manifest.json")
+        .stderr_has("next_shard");
+    assert!(contents(&out) == before);
+}
+
 // ------------------------------------------------------------------ help
 
 #[test]

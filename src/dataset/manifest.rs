@@ -292,6 +292,19 @@ impl Manifest {
                 s.file, s.part, sc.parts
             )));
         }
+        // New files are named from `next_shard`: one at or below a listed
+        // file's number would make an append replace that file.
+        let files = (m.shards.iter().map(|s| &s.file))
+            .chain(m.doc_freq.iter().map(|d| &d.file))
+            .chain(m.sketches.iter().map(|k| &k.file));
+        for f in files {
+            if file_number(f).is_some_and(|n| n >= m.next_shard) {
+                return Err(corrupt(format!(
+                    "next_shard {} does not lie above the number of {f}, which it lists",
+                    m.next_shard
+                )));
+            }
+        }
         Ok(m)
     }
 
@@ -359,6 +372,12 @@ impl Manifest {
         }
         h.digest()
     }
+}
+
+/// The number in a file name that ingest gave it (`train-000012.tms`: 12).
+fn file_number(name: &str) -> Option<u64> {
+    let stem = name.rsplit_once('.').map_or(name, |(s, _)| s);
+    stem.rsplit_once('-')?.1.parse().ok()
 }
 
 fn find_sum(bytes: &[u8]) -> Option<usize> {
@@ -429,6 +448,22 @@ pub(crate) mod tests {
             assert!(err.contains("damaged file"), "{err}");
         }
         assert!(Manifest::from_bytes(&sample().to_bytes(), p).is_ok());
+    }
+
+    /// New files are named from `next_shard`, so it must lie above the
+    /// number of every file listed, or an append would replace one.
+    #[test]
+    fn next_shard_at_or_below_a_listed_file_is_refused() {
+        let p = Path::new("manifest.json");
+        let mut m = sample();
+        m.next_shard = 0;
+        let err = Manifest::from_bytes(&m.to_bytes(), p)
+            .unwrap_err()
+            .to_string();
+        assert!(
+            err.contains("next_shard") && err.contains("train-000000.tms"),
+            "{err}"
+        );
     }
 
     #[test]
