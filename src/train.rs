@@ -380,15 +380,26 @@ pub fn idf_of(dir: &Path, m: &Manifest) -> Result<Vec<f32>> {
     let mut df = vec![0u64; d];
     let mut n = 0u64;
     for e in &m.doc_freq {
-        let f = DocFreq::open(&dataset::file_in(dir, &e.file), true)?;
-        n += f.rows();
+        let path = dataset::file_in(dir, &e.file);
+        let f = DocFreq::open(&path, true)?;
+        // As `verify` checks it: this batch's file, of this dataset's width.
+        if format!("{:016x}", f.checksum()) != e.checksum
+            || f.log2_buckets() != m.features.log2_buckets
+            || f.rows() != e.train_rows
+        {
+            return Err(Error::Mismatch {
+                path,
+                what: "document-frequency file is not the one the manifest lists".into(),
+            });
+        }
+        n = n.saturating_add(f.rows());
         for (a, &b) in df.iter_mut().zip(f.counts()?) {
             *a += b as u64;
         }
     }
     Ok(df
         .iter()
-        .map(|&c| (((1 + n) as f64 / (1 + c) as f64).ln() + 1.0) as f32)
+        .map(|&c| ((n.saturating_add(1) as f64 / (1 + c) as f64).ln() + 1.0) as f32)
         .collect())
 }
 

@@ -244,6 +244,35 @@ fn idf_factors_follow_the_smoothed_formula() {
     assert_eq!(model_meta(&model)["training"]["idf"], true);
 }
 
+/// A document-frequency file that is not the one the manifest lists (here
+/// another dataset's, of the same settings, copied over it) is refused by
+/// `--idf` as by `verify`, naming the file, rather than weighting features by
+/// another dataset's counts.
+#[test]
+fn idf_refuses_a_document_frequency_file_the_manifest_does_not_list() {
+    let t = tmp();
+    let dir = t.path().join("d");
+    fixture_dataset(&dir, &[]);
+    let other = t.path().join("other");
+    let half = t.path().join("half.tsv");
+    let text = String::from_utf8(fixture_bytes("inbox.tsv")).unwrap();
+    let lines: Vec<&str> = text.lines().collect();
+    std::fs::write(&half, lines[..lines.len() / 2].join("\n") + "\n").unwrap();
+    ingest(&[&half], &other, &["--log2-buckets", "16", "-q"]).ok();
+    let ours = &manifest(&dir).doc_freq[0].file;
+    let theirs = &manifest(&other).doc_freq[0].file;
+    std::fs::copy(other.join(theirs), dir.join(ours)).unwrap();
+    tamis(["verify", s(&dir)]).fails().stderr_has(ours);
+    let model = t.path().join("m.tmm");
+    train(&dir, &model, &["--idf", "--epochs", "1", "-q"])
+        .fails()
+        .stderr_has(&dir.join(ours).display().to_string())
+        .stderr_has("not the one the manifest lists");
+    assert!(!model.exists());
+    // Without idf the file is not read.
+    train(&dir, &model, &["--epochs", "1", "-q"]).ok();
+}
+
 #[test]
 fn the_same_settings_give_the_same_bytes_whatever_the_threads() {
     let t = tmp();
