@@ -470,6 +470,12 @@ fn damaged_checkpoints_are_refused_and_nothing_is_touched() {
     let sum = xxhash_rust::xxh3::xxh3_64(&bytes[..end]);
     bytes[end..end + 8].copy_from_slice(&sum.to_le_bytes());
     check(&bytes, "format version 7 is not supported");
+    // Intact checksums over idf factors that are not finite (resealed).
+    let mut bytes = good.clone();
+    let (off, _) = section(&bytes, 5);
+    bytes[off..off + 4].copy_from_slice(&f32::NAN.to_le_bytes());
+    reseal(&mut bytes);
+    check(&bytes, "not finite");
     // A model is not a checkpoint.
     std::fs::write(&bad, &model_bytes).unwrap();
     tamis(["train", "--resume", s(&bad)])

@@ -585,6 +585,44 @@ fn damaged_models_are_refused_by_score_eval_and_verify() {
     score(&model, &[s(&inbox)]);
 }
 
+/// Checksums that fit over idf factors that do not (resealed by hand): not
+/// finite, or present while the header's idf flag says there are none (the
+/// factors would be dropped and every score change) are refused.
+#[test]
+fn models_with_bad_idf_factors_are_refused() {
+    let t = tmp();
+    let model = fixture_model(t.path(), "d", &[], &["--idf"]);
+    let good = std::fs::read(&model).unwrap();
+    let inbox = fixture("inbox.tsv");
+    let bad = t.path().join("bad.tmm");
+    let refused = |bytes: &[u8], needle: &str| {
+        std::fs::write(&bad, bytes).unwrap();
+        for o in [
+            tamis(["score", s(&bad), s(&inbox)]),
+            tamis(["eval", s(&bad), s(&inbox)]),
+            tamis(["verify", s(&bad)]),
+        ] {
+            o.fails().stderr_has(s(&bad)).stderr_has(needle);
+            assert_eq!(o.stdout, "", "{:?}", o.args);
+        }
+    };
+    let (off, _) = section(&good, MODEL_IDF);
+    for x in [f32::NAN, f32::INFINITY] {
+        let mut b = good.clone();
+        b[off + 8..off + 12].copy_from_slice(&x.to_le_bytes());
+        reseal(&mut b);
+        refused(&b, "idf factors are not finite");
+    }
+    // The third header parameter is the idf flag (1 when section 4 is there).
+    for flag in [0u64, 2] {
+        let mut b = good.clone();
+        b[48..56].copy_from_slice(&flag.to_le_bytes());
+        reseal(&mut b);
+        refused(&b, "idf");
+    }
+    score(&model, &[s(&inbox)]);
+}
+
 #[test]
 fn help_explains_every_option() {
     assert_help_explains_everything(&["score"]);

@@ -321,6 +321,9 @@ impl Checkpoint {
                 if s.len() != d {
                     return Err(bad("idf section has the wrong length".into()));
                 }
+                if s.iter().any(|v| !v.is_finite()) {
+                    return Err(bad("idf factors are not finite".into()));
+                }
                 Some(s.to_vec())
             }
             other => return Err(bad(format!("idf flag {other} is neither 0 nor 1"))),

@@ -400,6 +400,12 @@ impl Model {
             if idf.len() != self.dim() {
                 return Err(bad("idf section has the wrong length".into()));
             }
+            if idf.iter().any(|v| !v.is_finite()) {
+                return Err(bad("idf factors are not finite".into()));
+            }
+        }
+        if self.idf.is_some() != self.meta.training.idf {
+            return Err(bad("idf section and training settings disagree".into()));
         }
         if self
             .weights
@@ -479,11 +485,19 @@ impl Model {
             })?;
         let weights: &[f32] = cast_section(c.section(SEC_WEIGHTS, "weights")?, path, "weights")?;
         let biases: &[f32] = cast_section(c.section(SEC_BIASES, "biases")?, path, "biases")?;
-        let idf = if c.header().params[2] == 1 {
-            let s: &[f32] = cast_section(c.section(SEC_IDF, "idf")?, path, "idf")?;
-            Some(s.to_vec())
-        } else {
-            None
+        let has_idf = c.header().sections.iter().any(|s| s.id == SEC_IDF);
+        let idf = match c.header().params[2] {
+            0 if !has_idf => None,
+            1 => {
+                let s: &[f32] = cast_section(c.section(SEC_IDF, "idf")?, path, "idf")?;
+                Some(s.to_vec())
+            }
+            other => {
+                return Err(Error::Corrupt {
+                    path: path.to_path_buf(),
+                    what: format!("idf flag {other} does not fit the idf section"),
+                })
+            }
         };
         let sketch = if c.header().sections.iter().any(|s| s.id == SEC_SKETCH) {
             let sk = TokenSketch::from_bytes(c.section(SEC_SKETCH, "sketch")?, path)?;
