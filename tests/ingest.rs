@@ -1603,6 +1603,60 @@ fn append_never_replaces_files_the_manifest_lists() {
     assert!(contents(&out) == before);
 }
 
+/// A thread count far above any machine's cores is a usage error (exit 2)
+/// naming the option, in every command that takes one, instead of a run that
+/// tries to start a million threads (it ran out of memory, panicked or never
+/// ended). Each run is limited in memory and time so that a regression fails
+/// rather than taking the machine down.
+#[test]
+fn absurd_thread_counts_are_usage_errors() {
+    let t = tmp();
+    let out = t.path().join("d");
+    ingest(&[&fixture("inbox.tsv")], &out, &["-q"]).ok();
+    let model = t.path().join("m.tmm");
+    tamis([
+        "train",
+        s(&out),
+        "--model",
+        s(&model),
+        "--epochs",
+        "1",
+        "-q",
+    ])
+    .ok();
+    let inbox = fixture("inbox.tsv");
+    let other = t.path().join("other");
+    let m2 = t.path().join("m2.tmm");
+    let demo = t.path().join("demo");
+    for j in ["1025", "1000000", "18446744073709551615"] {
+        for args in [
+            vec!["ingest", s(&inbox), "--out", s(&other), "-q", "-j", j],
+            vec!["train", s(&out), "--model", s(&m2), "-q", "-j", j],
+            vec!["tune", s(&out), "--model", s(&m2), "-q", "-j", j],
+            vec!["score", s(&model), s(&inbox), "-j", j],
+            vec!["eval", s(&model), s(&out), "-j", j],
+            vec!["demo", "--dir", s(&demo), "--rows", "200", "-j", j],
+            vec!["bench", "--size", "100KB", "-j", j],
+        ] {
+            let o = std::process::Command::new("sh")
+                .arg("-c")
+                .arg("ulimit -v 4000000 && exec timeout 60 \"$0\" \"$@\"")
+                .arg(bin())
+                .args(&args)
+                .stdin(std::process::Stdio::null())
+                .output()
+                .unwrap();
+            let err = String::from_utf8_lossy(&o.stderr);
+            assert_eq!(o.status.code(), Some(2), "{args:?}: {err}");
+            assert!(
+                err.contains("--threads") && err.contains("1024"),
+                "{args:?}: {err}"
+            );
+        }
+    }
+    assert!(!other.exists() && !m2.exists() && !demo.exists());
+}
+
 // ------------------------------------------------------------------ help
 
 #[test]

@@ -18,7 +18,7 @@ pub struct Args {
 
     /// Threads of the parallel runs; every stage also runs with 1 thread to
     /// show the scaling [default: all cores].
-    #[arg(long, short = 'j', value_name = "N")]
+    #[arg(long, short = 'j', value_name = "N", value_parser = super::parse_threads)]
     pub threads: Option<usize>,
 
     /// Print the results as one JSON object instead of a table.

@@ -26,7 +26,7 @@ pub struct Args {
     pub seed: u64,
 
     /// Threads [default: all cores].
-    #[arg(long, short = 'j')]
+    #[arg(long, short = 'j', value_name = "N", value_parser = super::parse_threads)]
     pub threads: Option<usize>,
 }
 

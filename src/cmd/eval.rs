@@ -55,7 +55,7 @@ pub struct Args {
     pub report: Option<PathBuf>,
 
     /// Threads [default: all cores].
-    #[arg(long, short = 'j', value_name = "N")]
+    #[arg(long, short = 'j', value_name = "N", value_parser = super::parse_threads)]
     pub threads: Option<usize>,
 }
 

@@ -118,7 +118,7 @@ pub struct Args {
     pub force: bool,
 
     /// Threads that parse and hash [default: all cores].
-    #[arg(long, short = 'j', value_name = "N")]
+    #[arg(long, short = 'j', value_name = "N", value_parser = super::parse_threads)]
     pub threads: Option<usize>,
 
     /// Records longer than this many bytes are skipped and counted.

@@ -89,6 +89,20 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
     }
 }
 
+/// The most threads a command takes: far above the cores of any machine it
+/// runs on, and low enough that a mistyped count fails as a usage error
+/// instead of starting millions of threads (each with its stack and buffers).
+pub const MAX_THREADS: usize = 1024;
+
+/// Parse a `--threads` value: a count up to [`MAX_THREADS`].
+pub fn parse_threads(s: &str) -> Result<usize, String> {
+    let n: usize = s.parse().map_err(|e| format!("{e}"))?;
+    if n > MAX_THREADS {
+        return Err(format!("at most {MAX_THREADS} threads, got {n}"));
+    }
+    Ok(n)
+}
+
 /// Default thread count: every core.
 pub fn default_threads() -> usize {
     std::thread::available_parallelism().map_or(1, |n| n.get())

@@ -49,7 +49,7 @@ pub struct Args {
     pub max_line_bytes: usize,
 
     /// Threads [default: all cores]; the output order is the input order regardless.
-    #[arg(long, short = 'j', value_name = "N")]
+    #[arg(long, short = 'j', value_name = "N", value_parser = super::parse_threads)]
     pub threads: Option<usize>,
 
     /// Do not print the summary line on standard error.

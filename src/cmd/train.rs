@@ -139,7 +139,7 @@ pub struct Args {
 
     /// Threads [default: all cores]. The model does not depend on it (only on
     /// --replicas).
-    #[arg(long, short = 'j', value_name = "N")]
+    #[arg(long, short = 'j', value_name = "N", value_parser = super::parse_threads)]
     pub threads: Option<usize>,
 
     /// Print nothing but errors.

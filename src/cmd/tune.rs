@@ -87,7 +87,7 @@ pub struct Args {
     pub json: bool,
 
     /// Threads [default: all cores]. The models do not depend on it.
-    #[arg(long, short = 'j', value_name = "N")]
+    #[arg(long, short = 'j', value_name = "N", value_parser = super::parse_threads)]
     pub threads: Option<usize>,
 
     /// Print nothing but errors and the table.
