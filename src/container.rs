@@ -487,11 +487,22 @@ impl AtomicFile {
     /// Sync the data, rename the file into place and sync the folder.
     pub fn commit(mut self) -> Result<()> {
         let file = self.file.take().expect("file is open until commit");
-        file.sync_all().at(&self.tmp)?;
-        drop(file);
-        std::fs::rename(&self.tmp, &self.dest).at(&self.dest)?;
+        let placed = file.sync_all().at(&self.tmp).and_then(|()| {
+            drop(file);
+            std::fs::rename(&self.tmp, &self.dest).at(&self.dest)
+        });
+        self.remove_tmp_unless(&placed);
+        placed?;
         sync_dir(&parent_dir(&self.dest))?;
         Ok(())
+    }
+
+    /// After a failed sync or rename, remove the temporary file (as a drop
+    /// before commit does): nothing else will.
+    fn remove_tmp_unless(&self, placed: &Result<()>) {
+        if placed.is_err() {
+            let _ = std::fs::remove_file(&self.tmp);
+        }
     }
 
     /// Rename the file into place without syncing it. Only for files that become
@@ -499,7 +510,9 @@ impl AtomicFile {
     /// caller syncs them (see [`sync_file`]) before writing that file.
     pub fn commit_unsynced(mut self) -> Result<()> {
         drop(self.file.take());
-        std::fs::rename(&self.tmp, &self.dest).at(&self.dest)
+        let placed = std::fs::rename(&self.tmp, &self.dest).at(&self.dest);
+        self.remove_tmp_unless(&placed);
+        placed
     }
 }
 
@@ -938,5 +951,29 @@ mod tests {
         }
         assert_eq!(std::fs::read(&dest).unwrap(), b"old");
         assert_eq!(std::fs::read_dir(dir.path()).unwrap().count(), 1);
+    }
+
+    /// A commit whose rename fails (the destination is a folder) removes its
+    /// temporary file, as a dropped one does.
+    #[test]
+    fn failed_commit_leaves_nothing() {
+        let dir = tempfile::tempdir().unwrap();
+        let dest = dir.path().join("m.bin");
+        std::fs::create_dir(&dest).unwrap();
+        for synced in [true, false] {
+            let mut f = AtomicFile::create(&dest).unwrap();
+            f.file().write_all(b"new").unwrap();
+            let e = if synced {
+                f.commit()
+            } else {
+                f.commit_unsynced()
+            };
+            assert!(e.unwrap_err().to_string().contains("m.bin"));
+            let names: Vec<_> = std::fs::read_dir(dir.path())
+                .unwrap()
+                .map(|e| e.unwrap().file_name())
+                .collect();
+            assert_eq!(names, ["m.bin"], "synced {synced}");
+        }
     }
 }
