@@ -576,7 +576,14 @@ fn begin(
     )?;
     let _locks = locks;
 
-    let m = distributed::agree(comm, Manifest::load(&opts.dir))?;
+    let m = distributed::agree(
+        comm,
+        Manifest::load(&opts.dir).and_then(|m| {
+            dataset::refuse_own_file(&opts.dir, &m, &opts.model, "model")?;
+            dataset::refuse_own_file(&opts.dir, &m, &ckpt_path, "checkpoint")?;
+            Ok(m)
+        }),
+    )?;
     // Every rank must see the same dataset before it checks anything in it.
     distributed::check_same_dataset(comm, m.fingerprint())?;
     let positive = distributed::agree(comm, trainable_task(&m, &opts.dir))?;

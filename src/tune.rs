@@ -181,6 +181,7 @@ pub fn tune(opts: &TuneOptions, log: Log) -> Result<TuneReport> {
     }
     let _lock = train::lock_next_to(&opts.model, "model")?;
     let m = Manifest::load(&opts.dir)?;
+    crate::dataset::refuse_own_file(&opts.dir, &m, &opts.model, "model")?;
     let positive = train::trainable_task(&m, &opts.dir)?;
     if m.validation_rows() == 0 {
         return Err(Error::Invalid(format!(

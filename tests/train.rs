@@ -273,6 +273,60 @@ fn idf_refuses_a_document_frequency_file_the_manifest_does_not_list() {
     train(&dir, &model, &["--epochs", "1", "-q"]).ok();
 }
 
+/// An output path that is one of the dataset's own files (its manifest or
+/// a file the manifest lists) is refused before anything is written: a model,
+/// checkpoint, calibrated model or report written there replaced the file and
+/// destroyed the dataset.
+#[test]
+fn outputs_never_replace_the_datasets_own_files() {
+    let t = tmp();
+    let dir = t.path().join("d");
+    fixture_dataset(&dir, &[]);
+    let model = t.path().join("m.tmm");
+    train(&dir, &model, &["--epochs", "1", "-q"]).ok();
+    let before = contents(&dir);
+    let manifest_path = dir.join("manifest.json");
+    let shard = dir.join(&manifest(&dir).shards[0].file);
+    for own in [&manifest_path, &shard] {
+        let o = s(own);
+        for args in [
+            vec!["train", s(&dir), "--model", o, "--epochs", "1", "-q"],
+            vec![
+                "train",
+                s(&dir),
+                "--model",
+                s(&model),
+                "--checkpoint",
+                o,
+                "-q",
+            ],
+            vec!["tune", s(&dir), "--model", o, "--epochs", "1", "-q"],
+            vec![
+                "calibrate",
+                s(&model),
+                s(&dir),
+                "--min-recall",
+                "0.5",
+                "--out",
+                o,
+            ],
+            vec!["eval", s(&model), s(&dir), "--report", o],
+        ] {
+            tamis(&args)
+                .fails()
+                .stderr_has(o)
+                .stderr_has("dataset's own");
+            assert!(contents(&dir) == before, "{args:?} changed the dataset");
+        }
+    }
+    // The same file named another way.
+    let dotted = dir.join(".").join("manifest.json");
+    train(&dir, &dotted, &["--epochs", "1", "-q"])
+        .fails()
+        .stderr_has("dataset's own");
+    assert!(contents(&dir) == before);
+}
+
 #[test]
 fn the_same_settings_give_the_same_bytes_whatever_the_threads() {
     let t = tmp();

@@ -197,6 +197,8 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
             "--positive needs a target: --max-false-positive-rate, --min-precision or --min-recall"
         );
     }
+    let dest = a.out.as_ref().unwrap_or(&a.model);
+    tamis::dataset::refuse_own_file(&a.dir, &Manifest::load(&a.dir)?, dest, "model")?;
     let rows = super::eval::scored_split(&model, &a.dir, super::eval::Which::Validation)
         .with_context(|| format!("cannot score the validation split of {}", a.dir.display()))?;
     let fingerprint = format!("{:016x}", Manifest::load(&a.dir)?.fingerprint());
@@ -218,7 +220,6 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
         );
     }
     model.meta.calibration = Some(rep.calibration.clone());
-    let dest = a.out.as_ref().unwrap_or(&a.model);
     model
         .save(dest)
         .with_context(|| format!("cannot write the model {}", dest.display()))?;

@@ -249,7 +249,12 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
         .with_context(|| format!("cannot load model {}", a.model.display()))?;
     let threads = a.threads.unwrap_or_else(super::default_threads);
     let (rows, skipped) = if a.data.len() == 1 && Path::new(&a.data[0]).is_dir() {
-        (scored_split(&model, Path::new(&a.data[0]), a.split)?, 0)
+        let dir = Path::new(&a.data[0]);
+        if let Some(r) = &a.report {
+            let m = tamis::dataset::Manifest::load(dir)?;
+            tamis::dataset::refuse_own_file(dir, &m, r, "report")?;
+        }
+        (scored_split(&model, dir, a.split)?, 0)
     } else {
         on_inputs(&model, &a, threads)?
     };
