@@ -198,10 +198,11 @@ pub fn run(a: Args) -> anyhow::Result<ExitCode> {
         );
     }
     let dest = a.out.as_ref().unwrap_or(&a.model);
-    tamis::dataset::refuse_own_file(&a.dir, &Manifest::load(&a.dir)?, dest, "model")?;
+    let manifest = Manifest::load(&a.dir)?;
+    tamis::dataset::refuse_own_file(&a.dir, &manifest, dest, "model")?;
     let rows = super::eval::scored_split(&model, &a.dir, super::eval::Which::Validation)
         .with_context(|| format!("cannot score the validation split of {}", a.dir.display()))?;
-    let fingerprint = format!("{:016x}", Manifest::load(&a.dir)?.fingerprint());
+    let fingerprint = format!("{:016x}", manifest.fingerprint());
     let rep = calibrate::calibrate(&model, &rows, &a.dir, &fingerprint, target, only)?;
     {
         let mut out = std::io::stdout().lock();
