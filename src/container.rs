@@ -549,6 +549,18 @@ pub fn remove_stale_temps(dest: &Path) {
     }
 }
 
+/// Whether two paths name the same place, however they are spelt: the same
+/// file name in the same folder (symbolic links to folders followed; the file
+/// itself need not exist yet).
+pub fn same_place(a: &Path, b: &Path) -> bool {
+    let place = |p: &Path| {
+        let parent = parent_dir(p);
+        let parent = std::fs::canonicalize(&parent).unwrap_or(parent);
+        (parent, p.file_name().map(|n| n.to_owned()))
+    };
+    place(a) == place(b)
+}
+
 /// The folder holding `path` (`.` for a bare file name).
 pub fn parent_dir(path: &Path) -> PathBuf {
     match path.parent() {

@@ -798,3 +798,28 @@ fn scores_that_overflow_are_refused_naming_where() {
             .stderr_has("not finite");
     }
 }
+
+/// The report never replaces what it reports on: neither the model nor a raw
+/// input file, however the path is spelt; both stay as they were.
+#[test]
+fn the_report_is_refused_over_its_own_inputs() {
+    let t = tmp();
+    let (_, model) = spam_model(t.path(), "r", "hinge");
+    let tsv = t.path().join("new.tsv");
+    synth_tsv(&tsv, 200, 5);
+    let (model_bytes, tsv_bytes) = (std::fs::read(&model).unwrap(), std::fs::read(&tsv).unwrap());
+    let sub = t.path().join("sub");
+    std::fs::create_dir(&sub).unwrap();
+    let roundabout = sub.join("..").join(tsv.file_name().unwrap());
+    for report in [&model, &tsv, &roundabout] {
+        tamis(["eval", s(&model), s(&tsv), "--report", s(report)])
+            .fails()
+            .stderr_has("cannot be written over its own input");
+    }
+    assert_eq!(std::fs::read(&model).unwrap(), model_bytes);
+    assert_eq!(std::fs::read(&tsv).unwrap(), tsv_bytes);
+    // Elsewhere the report is written.
+    let page = t.path().join("page.html");
+    tamis(["eval", s(&model), s(&tsv), "--report", s(&page)]).ok();
+    assert!(std::fs::read_to_string(&page).unwrap().contains("<svg"));
+}

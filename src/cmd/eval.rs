@@ -247,6 +247,20 @@ pub fn print(m: &Metrics, out: &mut impl Write) -> std::io::Result<()> {
 pub fn run(a: Args) -> anyhow::Result<ExitCode> {
     let model = Model::load(&a.model)
         .with_context(|| format!("cannot load model {}", a.model.display()))?;
+    if let Some(r) = &a.report {
+        // The report must not replace what it reports on.
+        let inputs = a.data.iter().map(Path::new).filter(|p| !p.is_dir());
+        if let Some(p) = std::iter::once(a.model.as_path())
+            .chain(inputs)
+            .find(|p| tamis::container::same_place(p, r))
+        {
+            bail!(
+                "{}: the report cannot be written over its own input {}",
+                r.display(),
+                p.display()
+            );
+        }
+    }
     let threads = a.threads.unwrap_or_else(super::default_threads);
     let (rows, skipped) = if a.data.len() == 1 && Path::new(&a.data[0]).is_dir() {
         let dir = Path::new(&a.data[0]);

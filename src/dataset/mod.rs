@@ -34,18 +34,12 @@ pub fn file_in(dir: &Path, name: &str) -> PathBuf {
 /// files (its manifest or a file the manifest lists), however it is named:
 /// writing it would replace that file and destroy the dataset.
 pub fn refuse_own_file(dir: &Path, m: &Manifest, dest: &Path, what: &str) -> Result<()> {
-    let place = |p: &Path| {
-        let parent = crate::container::parent_dir(p);
-        let parent = std::fs::canonicalize(&parent).unwrap_or(parent);
-        (parent, p.file_name().map(|n| n.to_owned()))
-    };
-    let (at, name) = place(dest);
     let own = std::iter::once(manifest::MANIFEST_FILE)
         .chain(m.shards.iter().map(|s| s.file.as_str()))
         .chain(m.doc_freq.iter().map(|d| d.file.as_str()))
         .chain(m.sketches.iter().map(|k| k.file.as_str()));
     for f in own {
-        if place(&file_in(dir, f)) == (at.clone(), name.clone()) {
+        if crate::container::same_place(&file_in(dir, f), dest) {
             return Err(Error::Invalid(format!(
                 "{}: the {what} cannot be written over one of the dataset's own files",
                 dest.display()
