@@ -1,8 +1,8 @@
 //! Input: byte sources, decompression, record boundaries and field extraction.
 //!
 //! A source is a file or standard input (`-`). Compression is recognised by the
-//! first bytes (gzip `1f 8b`, zstd `28 b5 2f fd`), never by the file name. A
-//! [`ChunkReader`] cuts the decompressed stream into chunks of about
+//! first bytes (gzip `1f 8b`, zstd `28 b5 2f fd` or a skippable frame), never
+//! by the file name. A [`ChunkReader`] cuts the decompressed stream into chunks of about
 //! [`CHUNK_BYTES`] that end on a record boundary, numbering lines as it goes, so
 //! chunks can be parsed on any thread and the results put back in input order.
 //! [`parse`] turns a chunk into records or counted bad lines.
@@ -80,11 +80,14 @@ pub enum Compression {
     Zstd,
 }
 
-/// Recognise compression from the first bytes of a stream.
+/// Recognise compression from the first bytes of a stream. A Zstandard stream
+/// may begin with a skippable frame (magic `0x184D2A50`..=`0x184D2A5F`, RFC 8878
+/// §3.1.2) instead of a compressed one; the decoder skips it.
 pub fn detect(head: &[u8]) -> Compression {
+    let skippable = head.len() >= 4 && head[0] & 0xf0 == 0x50 && head[1..4] == [0x2a, 0x4d, 0x18];
     if head.starts_with(&[0x1f, 0x8b]) {
         Compression::Gzip
-    } else if head.starts_with(&[0x28, 0xb5, 0x2f, 0xfd]) {
+    } else if head.starts_with(&[0x28, 0xb5, 0x2f, 0xfd]) || skippable {
         Compression::Zstd
     } else {
         Compression::None
@@ -644,11 +647,18 @@ mod tests {
         gz.write_all(&text).unwrap();
         let gz = gz.finish().unwrap();
         let zs = zstd::encode_all(&text[..], 3).unwrap();
+        // A skippable frame first (RFC 8878 §3.1.2: magic 0x184D2A50 to
+        // 0x184D2A5F, little-endian, then a 4-byte little-endian size and that
+        // many bytes of user data), as some writers put metadata there.
+        let mut skip = vec![0x5e, 0x2a, 0x4d, 0x18, 5, 0, 0, 0];
+        skip.extend_from_slice(b"notes");
+        skip.extend_from_slice(&zs);
         // Names lie on purpose: detection must not use them.
         for (bytes, name, want) in [
             (&text[..], "a.gz", Compression::None),
             (&gz[..], "b.txt", Compression::Gzip),
             (&zs[..], "c.tsv", Compression::Zstd),
+            (&skip[..], "d.tsv", Compression::Zstd),
         ] {
             let mut s = source_of(bytes, dir.path(), name);
             assert_eq!(s.compression, want);
