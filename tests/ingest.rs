@@ -1765,3 +1765,28 @@ fn parts_split_the_rows_for_the_nodes_of_a_cluster() {
     tamis(["verify", s(&node), "--part", "1"]).ok();
     tamis(["verify", s(&node)]).fails();
 }
+
+/// `verify` counts each label's rows in the shards and sets them against the
+/// manifest's label dictionary: counts moved from one label to another (the
+/// totals unchanged, the manifest resealed) are reported by label.
+#[test]
+fn verify_checks_label_counts_against_the_shards() {
+    let t = tmp();
+    let out = t.path().join("d");
+    ingest(&[&fixture("inbox.tsv")], &out, &["-q"]).ok();
+    tamis(["verify", s(&out)]).ok();
+    let mut m = manifest(&out);
+    let name = m.labels[0].name.clone();
+    m.labels[0].train_rows += 1;
+    m.labels[1].train_rows -= 1;
+    m.store(&out).unwrap();
+    tamis(["verify", s(&out)])
+        .fails()
+        .stderr_has("manifest.json")
+        .stderr_has(&format!("label {name:?}: the manifest counts"));
+    // Put back, it verifies again.
+    m.labels[0].train_rows -= 1;
+    m.labels[1].train_rows += 1;
+    m.store(&out).unwrap();
+    tamis(["verify", s(&out)]).ok();
+}

@@ -105,10 +105,16 @@ pub fn verify_part(dir: &Path, part: Option<u32>) -> Result<VerifyReport> {
         ..Default::default()
     };
     let n_labels = m.labels.len() as u32;
+    // Rows of each label in each split (training, validation), as the shards hold them.
+    let mut held = vec![[0u64; 2]; m.labels.len()];
     for e in m.shards.iter().filter(|e| part.is_none_or(|k| e.part == k)) {
         r.checked += 1;
         match open_shard(dir, e).and_then(|s| {
             s.verify(Some(n_labels))?;
+            let split = (e.split == Split::Validation) as usize;
+            for &c in s.labels() {
+                held[c as usize][split] += 1;
+            }
             if s.cols() != m.features.buckets() {
                 return Err(Error::Mismatch {
                     path: s.path().to_path_buf(),
@@ -123,6 +129,21 @@ pub fn verify_part(dir: &Path, part: Option<u32>) -> Result<VerifyReport> {
         }) {
             Ok(()) => r.bytes += e.bytes,
             Err(err) => r.problems.push(err),
+        }
+    }
+    // The label dictionary's counts must be the shards' (when every shard of
+    // the dataset was read and found sound).
+    if part.is_none() && r.problems.is_empty() {
+        for (l, h) in m.labels.iter().zip(&held) {
+            if [l.train_rows, l.validation_rows] != *h {
+                r.problems.push(Error::Mismatch {
+                    path: dir.join(manifest::MANIFEST_FILE),
+                    what: format!(
+                        "label {:?}: the manifest counts {} training and {} validation rows, the shards hold {} and {}",
+                        l.name, l.train_rows, l.validation_rows, h[0], h[1]
+                    ),
+                });
+            }
         }
     }
     for d in &m.doc_freq {
