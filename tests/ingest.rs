@@ -1100,6 +1100,19 @@ fn io_errors_name_the_file_and_state_the_cause_once() {
         halves.windows(2).all(|w| w[0] != w[1]),
         "cause repeated: {line}"
     );
+    assert!(line.contains("the gzip stream is damaged"), "{line}");
+    // Other bytes after a whole compressed stream: the message says which
+    // format failed, not only the decoder's "unexpected end of file".
+    for (name, format) in [("inbox.tsv.gz", "gzip"), ("inbox.tsv.zst", "zstd")] {
+        let mut bytes = fixture_bytes(name);
+        bytes.extend_from_slice(b"left over after the stream\n");
+        let tail = t.path().join(format!("tail-{name}"));
+        std::fs::write(&tail, &bytes).unwrap();
+        ingest(&[&tail], &t.path().join("d"), &["--force"])
+            .fails()
+            .stderr_has(&format!("tail-{name}"))
+            .stderr_has(&format!("the {format} stream is damaged"));
+    }
 }
 
 #[test]

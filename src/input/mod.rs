@@ -176,6 +176,30 @@ impl<R: Read> Read for Watched<R> {
     }
 }
 
+/// A decoder whose errors say which compressed format failed: "unexpected end
+/// of file" alone does not tell the user that their gzip file is damaged.
+struct Decoding<R> {
+    inner: R,
+    format: &'static str,
+}
+
+impl<R: Read> Read for Decoding<R> {
+    fn read(&mut self, buf: &mut [u8]) -> io::Result<usize> {
+        self.inner.read(buf).map_err(|e| {
+            if e.kind() == io::ErrorKind::Interrupted {
+                return e;
+            }
+            io::Error::new(
+                e.kind(),
+                format!(
+                    "the {} stream is damaged, truncated or followed by other bytes ({e})",
+                    self.format
+                ),
+            )
+        })
+    }
+}
+
 /// An opened source: decompressed bytes plus what is needed for its fingerprint.
 pub struct Source {
     /// Name for messages (the path, or `stdin`).
@@ -213,10 +237,14 @@ impl Source {
         let compression = detect(head);
         let reader: Box<dyn Read + Send> = match compression {
             Compression::None => Box::new(br),
-            Compression::Gzip => Box::new(flate2::bufread::MultiGzDecoder::new(br)),
-            Compression::Zstd => {
-                Box::new(zstd::stream::read::Decoder::with_buffer(br).at(PathBuf::from(&name))?)
-            }
+            Compression::Gzip => Box::new(Decoding {
+                inner: flate2::bufread::MultiGzDecoder::new(br),
+                format: "gzip",
+            }),
+            Compression::Zstd => Box::new(Decoding {
+                inner: zstd::stream::read::Decoder::with_buffer(br).at(PathBuf::from(&name))?,
+                format: "zstd",
+            }),
         };
         Ok(Source {
             name,
