@@ -452,13 +452,7 @@ fn open_shards_checking(
         .par_iter()
         .enumerate()
         .map(|(i, e)| {
-            let s = dataset::open_shard(dir, e)?;
-            if s.cols() != m.features.buckets() {
-                return Err(Error::Mismatch {
-                    path: s.path().to_path_buf(),
-                    what: "shard width differs from the dataset's buckets".into(),
-                });
-            }
+            let s = dataset::open_shard(dir, m, e)?;
             if check(i) {
                 s.verify(Some(n_labels))?;
             }

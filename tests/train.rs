@@ -1041,3 +1041,52 @@ fn distributed_needs_a_build_with_mpi() {
     );
     assert!(!model.exists());
 }
+
+/// A shard as narrow as another dataset's buckets (copied in, the manifest
+/// resealed to list it) is refused by verify, train and eval alike, naming it:
+/// its indices would otherwise be read as other features.
+#[test]
+fn a_shard_of_another_width_is_refused_everywhere() {
+    let t = tmp();
+    let dir = t.path().join("d");
+    fixture_dataset(&dir, &[]);
+    let narrow = t.path().join("n");
+    ingest(
+        &[&fixture("inbox.tsv")],
+        &narrow,
+        &["--log2-buckets", "12", "-q"],
+    )
+    .ok();
+    let model = t.path().join("m.tmm");
+    train(&dir, &model, &["--epochs", "1", "-q"]).ok();
+    let theirs = manifest(&narrow);
+    let mut m = manifest(&dir);
+    let i = m
+        .shards
+        .iter()
+        .position(|e| e.split == Split::Validation)
+        .unwrap();
+    let j = theirs
+        .shards
+        .iter()
+        .position(|e| e.split == Split::Validation)
+        .unwrap();
+    let file = m.shards[i].file.clone();
+    std::fs::copy(narrow.join(&theirs.shards[j].file), dir.join(&file)).unwrap();
+    let e = &theirs.shards[j];
+    (m.shards[i].rows, m.shards[i].nnz, m.shards[i].checksum) = (e.rows, e.nnz, e.checksum.clone());
+    m.store(&dir).unwrap();
+    let named = dir.join(&file).display().to_string();
+    tamis(["verify", s(&dir)])
+        .fails()
+        .stderr_has(&named)
+        .stderr_has("columns");
+    train(&dir, &t.path().join("m2.tmm"), &["--epochs", "1", "-q"])
+        .fails()
+        .stderr_has(&named)
+        .stderr_has("columns");
+    tamis(["eval", s(&model), s(&dir)])
+        .fails()
+        .stderr_has(&named)
+        .stderr_has("columns");
+}

@@ -49,8 +49,10 @@ pub fn refuse_own_file(dir: &Path, m: &Manifest, dest: &Path, what: &str) -> Res
     Ok(())
 }
 
-/// Open the shard of an entry and check that it is the file the manifest lists.
-pub fn open_shard(dir: &Path, e: &ShardEntry) -> Result<Shard> {
+/// Open the shard of an entry of `m` and check that it is the file the
+/// manifest lists, and as wide as the dataset's buckets (its indices would
+/// otherwise be masked into other features without a word).
+pub fn open_shard(dir: &Path, m: &Manifest, e: &ShardEntry) -> Result<Shard> {
     let path = file_in(dir, &e.file);
     if !path.exists() {
         return Err(Error::Corrupt {
@@ -70,6 +72,16 @@ pub fn open_shard(dir: &Path, e: &ShardEntry) -> Result<Shard> {
                 e.rows,
                 e.nnz,
                 e.checksum
+            ),
+        });
+    }
+    if s.cols() != m.features.buckets() {
+        return Err(Error::Mismatch {
+            path,
+            what: format!(
+                "shard has {} columns, the dataset {}",
+                s.cols(),
+                m.features.buckets()
             ),
         });
     }
@@ -109,21 +121,11 @@ pub fn verify_part(dir: &Path, part: Option<u32>) -> Result<VerifyReport> {
     let mut held = vec![[0u64; 2]; m.labels.len()];
     for e in m.shards.iter().filter(|e| part.is_none_or(|k| e.part == k)) {
         r.checked += 1;
-        match open_shard(dir, e).and_then(|s| {
+        match open_shard(dir, &m, e).and_then(|s| {
             s.verify(Some(n_labels))?;
             let split = (e.split == Split::Validation) as usize;
             for &c in s.labels() {
                 held[c as usize][split] += 1;
-            }
-            if s.cols() != m.features.buckets() {
-                return Err(Error::Mismatch {
-                    path: s.path().to_path_buf(),
-                    what: format!(
-                        "shard has {} columns, the dataset {}",
-                        s.cols(),
-                        m.features.buckets()
-                    ),
-                });
             }
             Ok(())
         }) {

@@ -381,7 +381,7 @@ pub fn open_for(model: &Model, dir: &Path, splits: &[Split]) -> Result<(Vec<Shar
     let mut shards = Vec::new();
     for s in splits {
         for e in m.shards_of(*s) {
-            let sh = dataset::open_shard(dir, e)?;
+            let sh = dataset::open_shard(dir, &m, e)?;
             sh.verify(Some(names.len() as u32))?;
             shards.push(sh);
         }
