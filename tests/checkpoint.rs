@@ -870,3 +870,42 @@ fn a_checkpoint_of_another_epoch_order_restarts_its_epoch() {
     let want = p["step"].as_u64().unwrap() + epoch_steps(&train, 0) + epoch_steps(&train, 1);
     assert_eq!(model_meta(&model)["steps"].as_u64().unwrap(), want);
 }
+
+/// Metadata that passes its checksum but holds what `train` never writes
+/// (class weights that are not positive numbers, a step count no run reaches)
+/// is refused on loading, naming the checkpoint, by verify and by resume.
+#[test]
+fn a_checkpoint_with_impossible_settings_is_refused() {
+    let t = tmp();
+    let ds = dataset(t.path(), "ds", 2000, &[]);
+    let (_, ck) = finished_run_with_checkpoint(t.path(), &ds, &[]);
+    let good = tamis::checkpoint::Checkpoint::load(&ck).unwrap();
+    let models: Vec<&tamis::solver::Linear> = good.models.iter().collect();
+    let bad = t.path().join("bad.tmc");
+    type Edit<'a> = &'a dyn Fn(&mut tamis::checkpoint::CheckpointMeta);
+    let edits: [(Edit<'_>, &str); 4] = [
+        (&|m| m.settings.class_weights[0] = -1.0, "class weights"),
+        (&|m| m.settings.class_weights[0] = 0.0, "class weights"),
+        // JSON has no infinity: it is written as null, which does not parse.
+        (
+            &|m| m.settings.class_weights[0] = f64::INFINITY,
+            "damaged file",
+        ),
+        (&|m| m.position.step = u64::MAX, "beyond any run"),
+    ];
+    for (edit, want) in edits {
+        let mut meta = good.meta.clone();
+        edit(&mut meta);
+        tamis::checkpoint::Checkpoint::write(&bad, &meta, &models, good.idf.as_deref()).unwrap();
+        tamis(["verify", s(&bad)])
+            .fails()
+            .stderr_has(s(&bad))
+            .stderr_has(want);
+        tamis(["train", "--resume", s(&bad)])
+            .fails()
+            .stderr_has(want);
+    }
+    // The same checkpoint unedited loads.
+    tamis::checkpoint::Checkpoint::write(&bad, &good.meta, &models, good.idf.as_deref()).unwrap();
+    tamis(["verify", s(&bad)]).ok();
+}

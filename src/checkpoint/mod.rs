@@ -44,6 +44,9 @@ const SEC_SCALARS: u32 = 4;
 const SEC_IDF: u32 = 5;
 /// Scalars stored per model.
 const SCALARS: usize = 6;
+/// A step count no run reaches (2^53: a billion steps a second for over a
+/// hundred days), below which `f64` counts steps exactly and `u64` never wraps.
+const MAX_STEP: u64 = 1 << 53;
 
 fn section_name(id: u32) -> String {
     match id {
@@ -295,6 +298,22 @@ impl Checkpoint {
         }
         if meta.settings.class_weights.len() != meta.labels.len() {
             return Err(bad("class weights do not match the labels".into()));
+        }
+        // What `train` itself would never write: weights that are not positive
+        // numbers, or a step count no run reaches (it would wrap around).
+        if !meta
+            .settings
+            .class_weights
+            .iter()
+            .all(|w| *w > 0.0 && w.is_finite())
+        {
+            return Err(bad("class weights are not all positive numbers".into()));
+        }
+        if meta.position.step >= MAX_STEP {
+            return Err(bad(format!(
+                "step count {} is beyond any run's",
+                meta.position.step
+            )));
         }
         let (m, d) = (m as usize, d as usize);
         let v: &[f64] = cast_section(c.section(SEC_V, "v")?, path, "v")?;
