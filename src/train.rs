@@ -27,7 +27,7 @@ use crate::checkpoint::{
 };
 use crate::container;
 use crate::dataset::sketch::TokenSketch;
-use crate::dataset::{self, docfreq::DocFreq, Log, Manifest, ShardEntry, Split};
+use crate::dataset::{self, Log, Manifest, ShardEntry, Split};
 use crate::distributed::{self, Collective, Control, Solo};
 use crate::error::{Error, Result};
 use crate::eval::{evaluate_sums, per_class, Evaluation, Weights};
@@ -380,18 +380,7 @@ pub fn idf_of(dir: &Path, m: &Manifest) -> Result<Vec<f32>> {
     let mut df = vec![0u64; d];
     let mut n = 0u64;
     for e in &m.doc_freq {
-        let path = dataset::file_in(dir, &e.file);
-        let f = DocFreq::open(&path, true)?;
-        // As `verify` checks it: this batch's file, of this dataset's width.
-        if format!("{:016x}", f.checksum()) != e.checksum
-            || f.log2_buckets() != m.features.log2_buckets
-            || f.rows() != e.train_rows
-        {
-            return Err(Error::Mismatch {
-                path,
-                what: "document-frequency file is not the one the manifest lists".into(),
-            });
-        }
+        let f = dataset::open_doc_freq(dir, m, e)?;
         n = n.saturating_add(f.rows());
         for (a, &b) in df.iter_mut().zip(f.counts()?) {
             *a += b as u64;

@@ -23,7 +23,7 @@ use crate::error::{Error, Result};
 use crate::shard::Shard;
 
 pub use ingest::{ingest, Choices, IngestOptions, IngestSummary, Log};
-pub use manifest::{Manifest, ShardEntry, Split};
+pub use manifest::{DocFreqEntry, Manifest, ShardEntry, Split};
 
 /// Path of a file listed in the manifest of the dataset in `dir`.
 pub fn file_in(dir: &Path, name: &str) -> PathBuf {
@@ -88,6 +88,24 @@ pub fn open_shard(dir: &Path, m: &Manifest, e: &ShardEntry) -> Result<Shard> {
     Ok(s)
 }
 
+/// Open the document-frequency file of an entry of `m`, every checksum
+/// verified, and check that it is the file the manifest lists: its checksum,
+/// the dataset's bucket count and the batch's training rows.
+pub fn open_doc_freq(dir: &Path, m: &Manifest, d: &DocFreqEntry) -> Result<docfreq::DocFreq> {
+    let path = file_in(dir, &d.file);
+    let f = docfreq::DocFreq::open(&path, true)?;
+    if format!("{:016x}", f.checksum()) != d.checksum
+        || f.log2_buckets() != m.features.log2_buckets
+        || f.rows() != d.train_rows
+    {
+        return Err(Error::Mismatch {
+            path,
+            what: "document-frequency file is not the one the manifest lists".into(),
+        });
+    }
+    Ok(f)
+}
+
 /// Outcome of [`verify`].
 #[derive(Debug, Default)]
 pub struct VerifyReport {
@@ -150,18 +168,7 @@ pub fn verify_part(dir: &Path, part: Option<u32>) -> Result<VerifyReport> {
     }
     for d in &m.doc_freq {
         r.checked += 1;
-        let path = file_in(dir, &d.file);
-        let res = docfreq::DocFreq::open(&path, true).and_then(|f| {
-            let sum = format!("{:016x}", f.checksum());
-            if sum != d.checksum || f.log2_buckets() != m.features.log2_buckets {
-                return Err(Error::Mismatch {
-                    path: path.clone(),
-                    what: "document-frequency file is not the one the manifest lists".into(),
-                });
-            }
-            Ok(())
-        });
-        if let Err(err) = res {
+        if let Err(err) = open_doc_freq(dir, &m, d) {
             r.problems.push(err);
         }
     }
