@@ -294,10 +294,7 @@ impl Manifest {
         }
         // New files are named from `next_shard`: one at or below a listed
         // file's number would make an append replace that file.
-        let files = (m.shards.iter().map(|s| &s.file))
-            .chain(m.doc_freq.iter().map(|d| &d.file))
-            .chain(m.sketches.iter().map(|k| &k.file));
-        for f in files {
+        for f in m.files() {
             if file_number(f).is_some_and(|n| n >= m.next_shard) {
                 return Err(corrupt(format!(
                     "next_shard {} does not lie above the number of {f}, which it lists",
@@ -350,6 +347,14 @@ impl Manifest {
             }
         }
         t
+    }
+
+    /// Every file the manifest lists, by name inside the dataset folder:
+    /// shards, document-frequency files, token sketches.
+    pub fn files(&self) -> impl Iterator<Item = &str> {
+        (self.shards.iter().map(|s| s.file.as_str()))
+            .chain(self.doc_freq.iter().map(|d| d.file.as_str()))
+            .chain(self.sketches.iter().map(|k| k.file.as_str()))
     }
 
     /// The shards of one split.

@@ -34,11 +34,7 @@ pub fn file_in(dir: &Path, name: &str) -> PathBuf {
 /// files (its manifest or a file the manifest lists), however it is named:
 /// writing it would replace that file and destroy the dataset.
 pub fn refuse_own_file(dir: &Path, m: &Manifest, dest: &Path, what: &str) -> Result<()> {
-    let own = std::iter::once(manifest::MANIFEST_FILE)
-        .chain(m.shards.iter().map(|s| s.file.as_str()))
-        .chain(m.doc_freq.iter().map(|d| d.file.as_str()))
-        .chain(m.sketches.iter().map(|k| k.file.as_str()));
-    for f in own {
+    for f in std::iter::once(manifest::MANIFEST_FILE).chain(m.files()) {
         if crate::container::same_place(&file_in(dir, f), dest) {
             return Err(Error::Invalid(format!(
                 "{}: the {what} cannot be written over one of the dataset's own files",
