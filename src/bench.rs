@@ -112,14 +112,15 @@ pub struct StageResult {
 }
 
 impl StageResult {
-    /// A stage that reads the whole input (ingest, scoring): `secs` seconds
-    /// for `bytes` bytes and `rows` rows, against `limit_secs` to read them.
+    /// A stage that reads the whole input (ingest, scoring, the `wc -w`
+    /// reference): the child `run` took its seconds for `bytes` bytes and
+    /// `rows` rows (when the stage knows them), against `limit_secs` to read them.
     fn over_input(
         stage: &str,
         threads: usize,
         run: &ChildRun,
         bytes: u64,
-        rows: u64,
+        rows: Option<u64>,
         limit_secs: f64,
     ) -> StageResult {
         let secs = run.seconds;
@@ -128,7 +129,7 @@ impl StageResult {
             threads,
             seconds: secs,
             bytes_per_second: Some(bytes as f64 / secs),
-            rows_per_second: Some(rows as f64 / secs),
+            rows_per_second: rows.map(|r| r as f64 / secs),
             nnz_per_second: None,
             epoch: None,
             peak_rss_anon: run.peak_rss_anon,
@@ -610,14 +611,9 @@ pub fn run(opts: &BenchOptions, progress: &dyn Fn(&str)) -> Result<BenchReport> 
     // the same input (left out where `wc` cannot be run).
     progress("counting the words with wc -w (reference)");
     if let Some(run) = words_counted(&input) {
-        stages.push(StageResult {
-            bytes_per_second: Some(in_bytes as f64 / run.seconds),
-            ratio_to_limit: Some(run.seconds / in_secs.max(1e-9)),
-            peak_rss_anon: run.peak_rss_anon,
-            cores: run.cores(),
-            cpus: run.cpus,
-            ..StageResult::bare(WC_STAGE, 1, run.seconds)
-        });
+        stages.push(StageResult::over_input(
+            WC_STAGE, 1, &run, in_bytes, None, in_secs,
+        ));
     }
 
     // Ingest: 6 classes with 1 and N threads, binary with N.
@@ -660,7 +656,12 @@ pub fn run(opts: &BenchOptions, progress: &dyn Fn(&str)) -> Result<BenchReport> 
         rows = m.train_rows() + m.labels.iter().map(|l| l.validation_rows).sum::<u64>();
         nnz = m.shards.iter().map(|s| s.nnz).sum();
         stages.push(StageResult::over_input(
-            stage, threads, &run, in_bytes, rows, in_secs,
+            stage,
+            threads,
+            &run,
+            in_bytes,
+            Some(rows),
+            in_secs,
         ));
         if name == "ds-n" {
             // The single-thread copy must be the same dataset (same shard
@@ -792,7 +793,12 @@ pub fn run(opts: &BenchOptions, progress: &dyn Fn(&str)) -> Result<BenchReport> 
         ];
         let run = run_child(exe, &args, false, threads == 1)?;
         stages.push(StageResult::over_input(
-            "score", threads, &run, in_bytes, rows, in_secs,
+            "score",
+            threads,
+            &run,
+            in_bytes,
+            Some(rows),
+            in_secs,
         ));
     }
 
