@@ -705,27 +705,6 @@ fn the_report_has_one_svg_per_plot() {
     assert!(!std::fs::read_to_string(&page).unwrap().contains("<b>&co"));
 }
 
-/// `tamis ARGS...` with its address space limited to 2 GB, so that a run
-/// that allocates without bound fails at once instead of taking the machine's
-/// memory.
-fn tamis_limited(args: &[&str]) -> Out {
-    let o = std::process::Command::new("sh")
-        .arg("-c")
-        .arg("ulimit -v 2000000 && exec \"$0\" \"$@\"")
-        .arg(bin())
-        .args(args)
-        .env_remove("RUST_BACKTRACE")
-        .stdin(std::process::Stdio::null())
-        .output()
-        .expect("run tamis under sh");
-    Out {
-        args: args.iter().map(|a| a.to_string()).collect(),
-        code: o.status.code(),
-        stdout: String::from_utf8_lossy(&o.stdout).into_owned(),
-        stderr: String::from_utf8_lossy(&o.stderr).into_owned(),
-    }
-}
-
 #[test]
 fn scores_that_overflow_are_refused_naming_where() {
     // Invented ferry-inbox records with two numeric fields: `links` goes with
@@ -773,7 +752,7 @@ fn scores_that_overflow_are_refused_naming_where() {
          {\"label\":\"other\",\"text\":\"ferry\",\"links\":3.4e38,\"crossings\":3.4e38}\n",
     )
     .unwrap();
-    tamis_limited(&["eval", s(&model), s(&big)])
+    tamis_limited(&["eval", s(&model), s(&big)], 2_000_000)
         .fails()
         .stderr_has(&format!("{}:2", big.display()))
         .stderr_has("not finite");
@@ -792,7 +771,7 @@ fn scores_that_overflow_are_refused_naming_where() {
         vec!["eval", s(&model), s(&ds)],
         vec!["calibrate", s(&model), s(&ds), "--min-recall", "0.5"],
     ] {
-        tamis_limited(&cmd)
+        tamis_limited(&cmd, 2_000_000)
             .fails()
             .stderr_has(&shard.display().to_string())
             .stderr_has("not finite");

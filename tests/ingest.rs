@@ -1651,16 +1651,9 @@ fn absurd_thread_counts_are_usage_errors() {
             vec!["demo", "--dir", s(&demo), "--rows", "200", "-j", j],
             vec!["bench", "--size", "100KB", "-j", j],
         ] {
-            let o = std::process::Command::new("sh")
-                .arg("-c")
-                .arg("ulimit -v 4000000 && exec timeout 60 \"$0\" \"$@\"")
-                .arg(bin())
-                .args(&args)
-                .stdin(std::process::Stdio::null())
-                .output()
-                .unwrap();
-            let err = String::from_utf8_lossy(&o.stderr);
-            assert_eq!(o.status.code(), Some(2), "{args:?}: {err}");
+            let o = tamis_limited(&args, 4_000_000);
+            let err = &o.stderr;
+            assert_eq!(o.code, Some(2), "{args:?}: {err}");
             assert!(
                 err.contains("--threads") && err.contains("1024"),
                 "{args:?}: {err}"

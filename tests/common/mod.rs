@@ -51,6 +51,16 @@ pub struct Out {
 }
 
 impl Out {
+    /// What a finished run of `args` gave.
+    fn of(args: Vec<String>, o: std::process::Output) -> Out {
+        Out {
+            args,
+            code: o.status.code(),
+            stdout: String::from_utf8_lossy(&o.stdout).into_owned(),
+            stderr: String::from_utf8_lossy(&o.stderr).into_owned(),
+        }
+    }
+
     fn describe(&self) -> String {
         format!(
             "tamis {}\nexit {:?}\n--- stdout\n{}\n--- stderr\n{}",
@@ -155,12 +165,24 @@ where
         });
     }
     let o = child.wait_with_output().expect("wait for tamis");
-    Out {
-        args,
-        code: o.status.code(),
-        stdout: String::from_utf8_lossy(&o.stdout).into_owned(),
-        stderr: String::from_utf8_lossy(&o.stderr).into_owned(),
-    }
+    Out::of(args, o)
+}
+
+/// Run `tamis ARGS...` with its address space limited to `kib` KiB and its
+/// time to 60 seconds (`ulimit -v`, coreutils `timeout`), so that a run that
+/// allocates or loops without bound fails at once instead of taking the
+/// machine's memory or hanging the tests.
+pub fn tamis_limited(args: &[&str], kib: u64) -> Out {
+    let o = Command::new("sh")
+        .arg("-c")
+        .arg(format!("ulimit -v {kib} && exec timeout 60 \"$0\" \"$@\""))
+        .arg(bin())
+        .args(args)
+        .env_remove("RUST_BACKTRACE")
+        .stdin(Stdio::null())
+        .output()
+        .expect("run tamis under sh");
+    Out::of(to_strings(args), o)
 }
 
 /// Run `tamis ARGS...` with its standard output a pipe that nobody reads any
